@@ -1,0 +1,396 @@
+"""The Python API: a store handle with the verbs load, info, train, ask, ask_many, evaluate, audit."""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import time
+import uuid
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+from .questions import Question, check_text, make_question, read_questions
+from .store import Store, first
+
+STRATEGIES = ("policy", "greedy", "walk")
+CAUTION = ("hopper's answers are only as good as the loaded facts and the trained policy; "
+           "check the facts behind an answer before relying on it for anything consequential.")
+
+
+def _now() -> _dt.datetime:
+    return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None)
+
+
+def _check_choice(name, value, choices):
+    if value not in choices:
+        raise InputError(f"must be one of {', '.join(choices)} (got {value!r})", field=name)
+
+
+def _check_int(name, value, lo, hi=None):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < lo or \
+            (hi is not None and value > hi):
+        rng = f"from {lo} to {hi}" if hi is not None else f"at least {lo}"
+        raise InputError(f"must be a whole number {rng} (got {value!r})", field=name)
+
+
+class Hopper:
+    """A hopper store.  ``Hopper(path)`` names it; ``load`` creates it.
+
+    >>> hp = Hopper("demo.duckdb")
+    >>> hp.load(["facts.csv"])                    # doctest: +SKIP
+    >>> hp.train("train.jsonl", valid="valid.jsonl", seed=0)   # doctest: +SKIP
+    >>> hp.ask("Who makes part KX-2041?")["answer"]             # doctest: +SKIP
+    """
+
+    def __init__(self, path=None):
+        self.store = Store(path)
+        self._graph = None
+        self._encoder = None
+
+    @property
+    def path(self) -> Path:
+        return self.store.path
+
+    def __repr__(self) -> str:
+        return f"Hopper({str(self.path)!r})"
+
+    # -- facts -------------------------------------------------------------------------------
+    def load(self, files, skip_invalid: bool = False, progress: bool | None = None) -> dict:
+        """Load fact tables (CSV, Parquet, JSON Lines); all or nothing unless ``skip_invalid``."""
+        from .load import load
+
+        report = load(self.store, files, skip_invalid=skip_invalid, progress=progress,
+                      encoder=self._encoder_for_load())
+        self._graph = None
+        try:  # make the fast question encoder now, while torch is loaded anyway
+            from . import embed
+            embed.ensure_fast_model()
+        except Exception:  # noqa: BLE001 - ask falls back to the reference encoder
+            pass
+        return report.as_dict()
+
+    def info(self) -> dict:
+        """Counts of facts, entities, relations and runs; the model; the active policy."""
+        return self.store.info()
+
+    # -- shared pieces ---------------------------------------------------------------------------
+    def _encoder_for_load(self):
+        from . import embed
+
+        if self._encoder is None:
+            self._encoder = embed.Encoder("auto")
+        return self._encoder
+
+    def _graph_now(self):
+        from .env import Graph
+
+        with self.store.connect() as con:
+            version = int(Store.get_meta(con, "facts_version", "0"))
+        if self._graph is None or self._graph.facts_version != version:
+            self._graph = Graph.from_store(self.store)
+        return self._graph
+
+    def _policy(self, version=None, required=True):
+        from .policy import Policy
+
+        with self.store.connect() as con:
+            policy = Policy.read(con, version)
+        if policy is None and required:
+            raise InputError("the store has no trained policy", file=str(self.path),
+                             hint="run 'hopper train --questions FILE', or use --strategy greedy or walk")
+        return policy
+
+    def _questions(self, questions, need_answer=True) -> list[Question]:
+        if isinstance(questions, (str, Path)):
+            return read_questions(questions, need_answer=need_answer)
+        out = []
+        for i, q in enumerate(questions, start=1):
+            if isinstance(q, Question):
+                out.append(q)
+            elif isinstance(q, str):
+                out.append(Question(check_text(q, line=i)))
+            else:
+                out.append(make_question(q, file="questions", line=i, need_answer=need_answer))
+        if not out:
+            raise InputError("no questions given", field="questions")
+        return out
+
+    def _encode(self, texts):
+        from . import embed
+
+        if self._encoder is None:
+            self._encoder = embed.Encoder("auto")
+        return self._encoder.encode(list(texts))
+
+    # -- training --------------------------------------------------------------------------------
+    def train(self, questions, valid=None, seed: int = 0, max_hops: int = 4,
+              progress: bool | None = None, log=None, **settings) -> dict:
+        """Train a policy by REINFORCE on question/answer pairs and store it as a new version.
+
+        ``valid`` (a file or list) early-stops training and sets the abstention threshold;
+        without it a tenth of ``questions`` is held out for that.  Returns a summary.
+        """
+        from dataclasses import fields
+
+        from . import train as tr
+        from .policy import Policy
+
+        _check_int("seed", seed, 0)
+        _check_int("max_hops", max_hops, 1, 8)
+        known = {f.name for f in fields(tr.TrainSettings)}
+        for k in settings:
+            if k not in known:
+                raise InputError(f"unknown training setting (known: {', '.join(sorted(known))})", field=k)
+        cfg = tr.TrainSettings(seed=seed, max_hops=max_hops, **settings)
+        cfg.validate()
+        qs = self._questions(questions)
+        vs = self._questions(valid) if valid is not None else None
+        if vs is None:
+            rng = np.random.default_rng(seed)
+            order = rng.permutation(len(qs))
+            n_valid = max(1, len(qs) // 10) if len(qs) >= 10 else 0
+            vs = [qs[i] for i in order[:n_valid]]
+            qs = [qs[i] for i in order[n_valid:]]
+        graph = self._graph_now()
+        vecs = self._encode([q.text for q in qs + vs])
+        train_eps = tr.episodes(graph, qs, vecs[:len(qs)])
+        valid_eps = [e for e in tr.episodes(graph, vs, vecs[len(qs):]) if e.starts and e.gold]
+        policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log)
+        summary["baselines"] = self._tune_baselines(graph, valid_eps or train_eps[:200], max_hops)
+        policy.settings.update(summary["baselines"])
+        from . import embed
+        policy.settings["model"] = embed.MODEL_NAME
+        policy.settings["facts_version"] = graph.facts_version
+        with self.store.transaction() as con:
+            version = first(con.execute("SELECT coalesce(max(version), 0) + 1 FROM policies"))[0]
+            policy.save(con, version, _now())
+        summary["version"] = version
+        summary["curve_png"] = self._plot_curve(summary["curve"], version)
+        return summary
+
+    def _tune_baselines(self, graph, eps, max_hops) -> dict:
+        """Give each baseline its best fixed hop count on held-out questions (a fair comparison)."""
+        from .search import greedy, walk
+        from .train import hits_and_rank
+
+        best = {}
+        for name, fn in (("greedy_hops", greedy), ("walk_hops", walk)):
+            scores = []
+            for hops in range(1, max_hops + 1):
+                hits = [hits_and_rank(fn(graph, e.qvec, e.starts, hops=hops), e.gold)[0] for e in eps]
+                scores.append((float(np.mean(hits)) if hits else 0.0, -hops))
+            best[name] = -max(scores)[1]
+        return best
+
+    def _plot_curve(self, curve, version) -> str | None:
+        try:
+            import matplotlib
+            matplotlib.use("Agg")
+            import matplotlib.pyplot as plt
+        except Exception:  # noqa: BLE001
+            return None
+        out = Path(str(self.path) + f".train-v{version}.png")
+        fig, ax = plt.subplots(figsize=(6, 3.5))
+        ep = [c["epoch"] for c in curve]
+        ax.plot(ep, [c["train_reward"] for c in curve], marker="o", label="training reward (mean)")
+        ax.plot(ep, [c["valid_hits1"] for c in curve], marker="s", label="validation Hits@1")
+        ax.set_xlabel("epoch")
+        ax.set_ylim(0, 1.02)
+        ax.set_title(f"hopper policy v{version}")
+        ax.grid(alpha=0.3)
+        ax.legend(loc="lower right")
+        fig.tight_layout()
+        try:
+            fig.savefig(out, dpi=100)
+        except OSError:
+            return None
+        finally:
+            plt.close(fig)
+        return str(out)
+
+    # -- answering -------------------------------------------------------------------------------
+    def ask(self, question: str | None = None, *, subject: str | None = None,
+            relation: str | None = None, strategy: str = "policy", top: int = 10,
+            record: bool = True) -> dict:
+        """Answer one question (in words, or a subject/relation completion query)."""
+        if question is None and subject is None:
+            raise InputError("give a question, or subject and relation", field="question")
+        obj = {"question": question} if question is not None else {}
+        if subject is not None or relation is not None:
+            obj.update(subject=subject, relation=relation)
+        q = make_question(obj, file=None, line=None, need_answer=False)
+        return self.ask_many([q], strategy=strategy, top=top, record=record)[0]
+
+    def ask_many(self, questions, strategy: str = "policy", top: int = 10,
+                 record: bool = True) -> list[dict]:
+        """Answer many questions in one pass (one graph load, one encoder batch, one write)."""
+        _check_choice("strategy", strategy, STRATEGIES)
+        _check_int("top", top, 1, 1000)
+        qs = self._questions(questions, need_answer=False)
+        self.store.require()
+        graph = self._graph_now()
+        policy = self._policy() if strategy == "policy" else None
+        vecs = self._encode([q.text for q in qs])
+        results = []
+        for q, v in zip(qs, vecs):
+            t0 = time.perf_counter()
+            out = self._solve(graph, policy, strategy, q, v)
+            results.append((q, out, (time.perf_counter() - t0) * 1000))
+        return self._report(graph, policy, strategy, results, top, record)
+
+    def _starts(self, graph, q: Question, qvec):
+        if q.is_completion:
+            s = graph.entity_index(q.subject)
+            return [s] if s is not None else []
+        return graph.link(q.text, qvec)
+
+    def _solve(self, graph, policy, strategy, q: Question, qvec, hidden=frozenset()):
+        from .search import beam_search, greedy, walk
+
+        starts = self._starts(graph, q, qvec)
+        if strategy == "policy":
+            out = beam_search(graph, policy, qvec, starts, beam=int(policy.settings.get("beam", 16)),
+                              hidden=hidden)
+            if not out.abstained and out.confidence < policy.threshold:
+                out.abstained = True
+                out.reason = (f"confidence {out.confidence:.2f} is below the threshold "
+                              f"{policy.threshold:.2f} set on the validation questions")
+        elif strategy == "greedy":
+            hops = int(policy.settings.get("greedy_hops", 2)) if policy else 2
+            out = greedy(graph, qvec, starts, hops=hops)
+        else:
+            hops = int(policy.settings.get("walk_hops", 2)) if policy else 2
+            out = walk(graph, qvec, starts, hops=hops)
+        if q.is_completion and not starts:
+            out.reason = f"the subject '{q.subject}' is not an entity of the store"
+        return out
+
+    def _report(self, graph, policy, strategy, results, top, record) -> list[dict]:
+        """Turn outcomes into the contract's JSON objects and record them as runs."""
+        fact_rows = set()
+        for _, out, _ in results:
+            for f in out.fetches:
+                fact_rows.add(f.fact)
+                fact_rows.update(a for a, _ in f.alternatives if a is not None)
+        ids = [int(graph.fact_ids[r]) for r in sorted(fact_rows)]
+
+        def describe(con):
+            if not ids:
+                return {}
+            rows = con.execute("SELECT fact_id, subject, relation, object, text, source, source_id "
+                               "FROM facts WHERE fact_id IN (SELECT unnest(?::BIGINT[]))", [ids]).fetchall()
+            return {r[0]: r for r in rows}
+
+        docs, runs = [], []
+        for q, out, ms in results:
+            run_id = uuid.uuid4().hex[:16]
+            names = graph.entity_names
+            ranked = [{"answer": names[e], "score": round(float(s), 6)} for e, s in out.ranked[:top]]
+            answer = None if out.abstained or not out.ranked else names[out.ranked[0][0]]
+            doc = {"run_id": run_id, "question": q.text, "answer": answer,
+                   "confidence": round(float(out.confidence), 6), "abstained": bool(out.abstained or answer is None),
+                   "ranked": ranked, "fetches": [], "strategy": strategy,
+                   "policy_version": policy.version if policy else None,
+                   "start_entities": [names[s] for s in out.starts]}
+            if out.reason or doc["abstained"]:
+                doc["reason"] = out.reason or "no answer"
+            if q.is_completion:
+                doc.update(subject=q.subject, relation=q.relation)
+            docs.append(doc)
+            runs.append((doc, out, ms))
+        created = _now()
+
+        def fill(con):
+            info = describe(con)
+            for doc, out, _ in runs:
+                for f in out.fetches:
+                    fid = int(graph.fact_ids[f.fact])
+                    r = info.get(fid)
+                    doc["fetches"].append({
+                        "hop": f.hop + 1, "fact_id": fid, "subject": r[1], "relation": r[2],
+                        "object": r[3], "text": r[4], "probability": round(f.probability, 6),
+                        "direction": "forward" if f.direction == 0 else "inverse",
+                        "from": graph.entity_names[f.from_entity] if f.from_entity >= 0 else None,
+                        "to": graph.entity_names[f.to_entity], "source": r[5],
+                        "alternatives": [_alternative(graph, info, a, p) for a, p in f.alternatives]})
+
+        if not record:
+            with self.store.connect() as con:
+                fill(con)
+        else:
+            with self.store.transaction() as con:
+                fill(con)
+                for doc, out, ms in runs:
+                    con.execute("INSERT INTO runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", [
+                        doc["run_id"], created, doc["question"], doc.get("subject"), doc.get("relation"),
+                        doc["strategy"], doc["policy_version"], doc["answer"], doc["confidence"],
+                        doc["abstained"], doc.get("reason"), json.dumps(doc["ranked"]),
+                        json.dumps(doc["start_entities"]), graph.facts_version, round(ms, 3)])
+                    for f in doc["fetches"]:
+                        con.execute("INSERT INTO run_fetches VALUES (?, ?, ?, ?, ?, ?, ?)", [
+                            doc["run_id"], f["hop"], f["fact_id"], f["probability"], f["from"],
+                            f["to"], json.dumps(f["alternatives"])])
+        for doc, _, ms in runs:
+            doc["elapsed_ms"] = round(ms, 3)
+        return docs
+
+    # -- evaluation --------------------------------------------------------------------------------
+    def evaluate(self, questions, strategies=STRATEGIES) -> dict:
+        """Hits@1, MRR, mean fetches and ms per question for each strategy, on the same questions."""
+        from .train import episodes, hits_and_rank
+
+        for s in strategies:
+            _check_choice("strategy", s, STRATEGIES)
+        qs = self._questions(questions)
+        graph = self._graph_now()
+        policy = self._policy(required="policy" in strategies)
+        vecs = self._encode([q.text for q in qs])
+        eps = episodes(graph, qs, vecs)
+        table = {}
+        for s in strategies:
+            rows = []
+            for q, e, v in zip(qs, eps, vecs):
+                t0 = time.perf_counter()
+                out = self._solve(graph, policy, s, q, v)
+                ms = (time.perf_counter() - t0) * 1000
+                h1, rr = hits_and_rank(out, e.gold)
+                rows.append((q.hops, h1, rr, out.n_fetches, ms, out.abstained))
+            table[s] = _summarise(rows)
+        return {"questions": len(qs), "strategies": table,
+                "policy_version": policy.version if policy else None}
+
+    # -- audit -----------------------------------------------------------------------------------------
+    def audit(self, run_id: str) -> dict:
+        """A recorded run, with its fetches and the alternatives passed over at each hop."""
+        from .audit import read_run
+
+        return read_run(self.store, run_id)
+
+    def runs(self, limit: int = 50, **filters) -> list[dict]:
+        """Recorded runs, newest first."""
+        from .audit import list_runs
+
+        return list_runs(self.store, limit=limit, **filters)
+
+
+def _alternative(graph, info, fact_row, p):
+    if fact_row is None:
+        return {"fact_id": None, "text": "(stop and answer here)", "probability": round(p, 6)}
+    fid = int(graph.fact_ids[fact_row])
+    r = info.get(fid)
+    return {"fact_id": fid, "text": r[4] if r else None, "probability": round(p, 6)}
+
+
+def _summarise(rows) -> dict:
+    def agg(sel):
+        if not sel:
+            return None
+        a = np.array([r[1:5] for r in sel], float)
+        return {"n": len(sel), "hits1": round(a[:, 0].mean(), 4), "mrr": round(a[:, 1].mean(), 4),
+                "mean_fetches": round(a[:, 2].mean(), 3), "ms_per_question": round(a[:, 3].mean(), 2),
+                "abstained": round(float(np.mean([r[5] for r in sel])), 4)}
+    out = agg(rows)
+    hops = sorted({r[0] for r in rows if r[0] is not None})
+    out["by_hops"] = {str(h): agg([r for r in rows if r[0] == h]) for h in hops}
+    return out

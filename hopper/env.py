@@ -1,0 +1,323 @@
+"""The environment: the fact graph in memory, entity linking, and what can be fetched next."""
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .store import Store
+
+ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
+DENSE_K = 3         # facts offered by dense similarity to the state, to recover a poor link
+LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
+N_CHEAP = 8         # cheap features per candidate (see Candidates.feats)
+N_STOP = 4          # cheap features of the STOP action
+
+_TOKEN = re.compile(r"[^\s]+")
+_TRIM = "\"'`.,;:!?()[]{}<>«»“”‘’"
+
+
+def name_key(text: str) -> str:
+    """How entity names are matched: case-folded, inner white space collapsed."""
+    return " ".join(text.casefold().split())
+
+
+def _tokens(text: str) -> list[str]:
+    out = []
+    for tok in _TOKEN.findall(text.casefold()):
+        tok = tok.strip(_TRIM)
+        for suffix in ("'s", "’s"):
+            if tok.endswith(suffix) and len(tok) > len(suffix):
+                out.append(tok)  # keep the token as written too (names may end in 's)
+                tok = tok[: -len(suffix)]
+        if tok:
+            out.append(tok)
+    return out
+
+
+class Graph:
+    """The store's facts as arrays: the one view training, search and the baselines share.
+
+    Built from the DuckDB store and cached beside it as ``.npy`` files (memory-mapped, no
+    pickle), keyed by the store's ``facts_version`` so a fresh ``ask`` does not re-read
+    every vector from the database.
+    """
+
+    def __init__(self, arrays: dict, entity_names: list[str], relation_names: list[str],
+                 facts_version: int):
+        self.fact_ids = arrays["fact_ids"]
+        self.subj = arrays["subj"]
+        self.rel = arrays["rel"]
+        self.obj = arrays["obj"]
+        self.fact_vecs = arrays["fact_vecs"]
+        self.entity_vecs = arrays["entity_vecs"]
+        self.relation_vecs = arrays["relation_vecs"]
+        self.adj_ptr = arrays["adj_ptr"]
+        self.adj_fact = arrays["adj_fact"]
+        self.adj_dir = arrays["adj_dir"]
+        self.entity_names = entity_names
+        self.relation_names = relation_names
+        self.facts_version = facts_version
+        self._name_index = None
+        self._max_name_tokens = 1
+        self._fact_row = None
+
+    # -- building ------------------------------------------------------------------------
+    @classmethod
+    def from_store(cls, store: Store, use_cache: bool = True) -> "Graph":
+        with store.connect() as con:
+            version = int(Store.get_meta(con, "facts_version", "0"))
+            cache = Path(str(store.path) + ".cache") / f"graph-v{version}"
+            if use_cache and (cache / "done").exists():
+                try:
+                    return cls._read_cache(cache, version)
+                except (OSError, ValueError):
+                    pass  # a damaged cache is rebuilt below
+            graph = cls._read_store(con, version)
+        if use_cache:
+            graph._write_cache(cache)
+        return graph
+
+    @classmethod
+    def _read_store(cls, con, version: int) -> "Graph":
+        def vectors(sql):
+            tab = con.sql(sql).to_arrow_table()
+            if tab.num_rows == 0:
+                return tab, np.zeros((0, 384), np.float32)
+            col = tab.column("embedding").combine_chunks()
+            return tab, col.flatten().to_numpy().reshape(tab.num_rows, -1).astype(np.float32)
+
+        ents, entity_vecs = vectors("SELECT entity_id, name, embedding FROM entities ORDER BY entity_id")
+        rels, relation_vecs = vectors("SELECT relation_id, name, embedding FROM relations ORDER BY relation_id")
+        facts, fact_vecs = vectors(
+            "SELECT f.fact_id, f.subject_id, f.relation_id, f.object_id, v.embedding "
+            "FROM facts f JOIN fact_vectors v USING (fact_id) ORDER BY f.fact_id")
+        ent_ids = ents.column("entity_id").to_numpy()
+        rel_ids = rels.column("relation_id").to_numpy()
+        ent_pos = np.full(int(ent_ids.max(initial=0)) + 1, -1, np.int64)
+        ent_pos[ent_ids] = np.arange(len(ent_ids))
+        rel_pos = np.full(int(rel_ids.max(initial=0)) + 1, -1, np.int64)
+        rel_pos[rel_ids] = np.arange(len(rel_ids))
+        subj = ent_pos[facts.column("subject_id").to_numpy()].astype(np.int32)
+        obj = ent_pos[facts.column("object_id").to_numpy()].astype(np.int32)
+        rel = rel_pos[facts.column("relation_id").to_numpy()].astype(np.int32)
+        n_ent = len(ent_ids)
+        # Adjacency in CSR form: every fact appears under its subject (dir 0, forward) and
+        # under its object (dir 1, inverse).  A hop costs O(degree), never a scan.
+        ends = np.concatenate([subj, obj]).astype(np.int64)
+        fidx = np.concatenate([np.arange(len(subj)), np.arange(len(obj))]).astype(np.int32)
+        dirs = np.concatenate([np.zeros(len(subj), np.int8), np.ones(len(obj), np.int8)])
+        order = np.argsort(ends, kind="stable")
+        adj_ptr = np.zeros(n_ent + 1, np.int64)
+        np.add.at(adj_ptr, ends + 1, 1)
+        arrays = {
+            "fact_ids": facts.column("fact_id").to_numpy().astype(np.int64),
+            "subj": subj, "rel": rel, "obj": obj, "fact_vecs": fact_vecs,
+            "entity_vecs": entity_vecs, "relation_vecs": relation_vecs,
+            "adj_ptr": np.cumsum(adj_ptr), "adj_fact": fidx[order], "adj_dir": dirs[order],
+        }
+        return cls(arrays, ents.column("name").to_pylist(), rels.column("name").to_pylist(), version)
+
+    _ARRAYS = ("fact_ids", "subj", "rel", "obj", "fact_vecs", "entity_vecs", "relation_vecs",
+               "adj_ptr", "adj_fact", "adj_dir")
+
+    def _write_cache(self, cache: Path) -> None:
+        try:
+            cache.parent.mkdir(parents=True, exist_ok=True)
+            tmp = Path(tempfile.mkdtemp(prefix=".tmp-", dir=cache.parent))
+            for name in self._ARRAYS:
+                np.save(tmp / f"{name}.npy", getattr(self, name), allow_pickle=False)
+            (tmp / "names.json").write_text(json.dumps(
+                {"entities": self.entity_names, "relations": self.relation_names}), "utf-8")
+            (tmp / "done").write_text("ok")
+            try:
+                os.replace(tmp, cache)
+            except OSError:  # another process wrote it first
+                shutil.rmtree(tmp, ignore_errors=True)
+            for old in cache.parent.glob("graph-v*"):  # keep only the current snapshot
+                if old != cache:
+                    shutil.rmtree(old, ignore_errors=True)
+        except OSError:
+            pass  # a read-only folder: work without the cache
+
+    @classmethod
+    def _read_cache(cls, cache: Path, version: int) -> "Graph":
+        arrays = {n: np.load(cache / f"{n}.npy", mmap_mode="r", allow_pickle=False)
+                  for n in cls._ARRAYS}
+        names = json.loads((cache / "names.json").read_text("utf-8"))
+        return cls(arrays, names["entities"], names["relations"], version)
+
+    # -- lookups -------------------------------------------------------------------------
+    @property
+    def n_facts(self) -> int:
+        return len(self.fact_ids)
+
+    def entity_index(self, name: str) -> int | None:
+        self._ensure_names()
+        return self._name_index.get(name_key(name))
+
+    def _ensure_names(self):
+        if self._name_index is None:
+            index = {}
+            longest = 1
+            for i, n in enumerate(self.entity_names):
+                key = name_key(n)
+                index.setdefault(key, i)
+                longest = max(longest, len(_tokens(n)))
+            self._name_index = index
+            self._max_name_tokens = min(longest, 12)
+
+    def fact_row(self, fact_id: int) -> int | None:
+        if self._fact_row is None:
+            self._fact_row = {int(f): i for i, f in enumerate(self.fact_ids)}
+        return self._fact_row.get(int(fact_id))
+
+    def link(self, question: str, qvec: np.ndarray | None = None) -> list[int]:
+        """Entities named in the question, longest names first; dense fallback on the names."""
+        self._ensure_names()
+        toks = _tokens(question)
+        found: list[tuple[int, int, int]] = []  # (-length, start, entity)
+        for n in range(min(self._max_name_tokens, len(toks)), 0, -1):
+            for i in range(len(toks) - n + 1):
+                key = " ".join(toks[i:i + n])
+                ent = self._name_index.get(key)
+                if ent is not None:
+                    found.append((-n, i, ent))
+        chosen, covered = [], set()
+        for neg, start, ent in sorted(found):
+            span = set(range(start, start - neg))
+            if span & covered or ent in chosen:
+                continue
+            covered |= span
+            chosen.append(ent)
+        if chosen or qvec is None or len(self.entity_vecs) == 0:
+            return chosen
+        sims = np.asarray(self.entity_vecs) @ qvec
+        best = int(np.argmax(sims))
+        return [best] if sims[best] >= LINK_MIN_SIM else []
+
+    def neighbours(self, entity: int):
+        a, b = self.adj_ptr[entity], self.adj_ptr[entity + 1]
+        return self.adj_fact[a:b], self.adj_dir[a:b]
+
+    def degree(self, entity: int) -> int:
+        return int(self.adj_ptr[entity + 1] - self.adj_ptr[entity])
+
+    def far_end(self, fact: int, direction: int) -> int:
+        return int(self.obj[fact] if direction == 0 else self.subj[fact])
+
+    def dense_search(self, query: np.ndarray, k: int, exclude=()) -> np.ndarray:
+        """Facts most similar to ``query`` (exact search over the fact vectors)."""
+        if self.n_facts == 0:
+            return np.zeros(0, np.int64)
+        sims = np.asarray(self.fact_vecs) @ query
+        k2 = min(self.n_facts, k + len(exclude))
+        top = np.argpartition(-sims, k2 - 1)[:k2]
+        top = top[np.argsort(-sims[top], kind="stable")]
+        ex = set(int(e) for e in exclude)
+        return np.array([t for t in top if int(t) not in ex][:k], np.int64)
+
+
+@dataclass
+class Walker:
+    """One walk's position: where it stands and what it has fetched."""
+
+    entity: int
+    fetched: tuple = ()       # fact rows fetched so far, in order
+    visited: tuple = ()       # entities stood on so far
+
+
+@dataclass
+class Candidates:
+    """What a walker can fetch next (STOP is implicit, always offered first)."""
+
+    facts: np.ndarray   # fact rows, int64 [C]
+    dirs: np.ndarray    # 0 forward (subject -> object), 1 inverse, int8 [C]
+    nexts: np.ndarray   # the entity each fetch moves to, int64 [C]
+    feats: np.ndarray   # cheap features, float32 [C, N_CHEAP]
+    stop_feats: np.ndarray  # float32 [N_STOP]
+
+
+def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hops: int,
+               linked: frozenset, hidden: frozenset = frozenset(), dense: bool = True,
+               prerank_cache: dict | None = None) -> Candidates:
+    """The facts offered at this hop: touching facts (pre-ranked, capped) and a few dense ones.
+
+    The pre-ranking keeps the best fact of every (relation, direction) kind first, so the
+    policy can always choose any relation, then fills the cap by similarity to the question.
+    ``hidden`` facts are never offered (training hides the fact that states a completion
+    answer, so the policy learns paths that work without it).
+    """
+    e = walker.entity
+    key = e
+    if prerank_cache is not None and key in prerank_cache:
+        facts, dirs = prerank_cache[key]
+    else:
+        facts, dirs = graph.neighbours(e)
+        facts = np.asarray(facts, np.int64)
+        dirs = np.asarray(dirs, np.int8)
+        if len(facts) > 0:
+            sims = np.asarray(graph.fact_vecs[facts]) @ qvec
+            order = np.argsort(-sims, kind="stable")
+            if len(facts) > ADJ_CAP:
+                kind = graph.rel[facts[order]].astype(np.int64) * 2 + dirs[order]
+                _, first = np.unique(kind, return_index=True)
+                firsts = order[np.sort(first)][:ADJ_CAP]
+                rest = np.setdiff1d(order, firsts, assume_unique=True)
+                rest = rest[np.argsort(-sims[rest], kind="stable")]
+                order = np.concatenate([firsts, rest])[:ADJ_CAP]
+            facts, dirs = facts[order], dirs[order]
+        if prerank_cache is not None:
+            prerank_cache[key] = (facts, dirs)
+    fetched = set(walker.fetched)
+    keep = [i for i, f in enumerate(facts) if int(f) not in fetched and int(f) not in hidden]
+    facts, dirs = facts[keep], dirs[keep]
+    is_dense = np.zeros(len(facts), np.float32)
+    if dense and graph.n_facts:
+        query = qvec + (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0)
+                        if walker.fetched else 0.0)
+        query = query / max(float(np.linalg.norm(query)), 1e-9)
+        extra = graph.dense_search(query, DENSE_K, exclude=fetched | set(map(int, facts)) | hidden)
+        if len(extra):
+            facts = np.concatenate([facts, extra, extra])
+            dirs = np.concatenate([dirs, np.zeros(len(extra), np.int8), np.ones(len(extra), np.int8)])
+            is_dense = np.concatenate([is_dense, np.ones(2 * len(extra), np.float32)])
+    nexts = np.where(dirs == 0, graph.obj[facts], graph.subj[facts]).astype(np.int64)
+    fv = np.asarray(graph.fact_vecs[facts]) if len(facts) else np.zeros((0, qvec.shape[0]), np.float32)
+    rv = np.asarray(graph.relation_vecs[graph.rel[facts]]) if len(facts) else fv
+    visited = set(walker.visited) | {e}
+    deg = np.array([graph.degree(int(n)) for n in nexts], np.float32)
+    feats = np.stack([
+        fv @ qvec,                                               # text similar to the question
+        rv @ qvec,                                               # relation similar to the question
+        dirs.astype(np.float32),                                 # inverse direction
+        is_dense,                                                # offered by dense search
+        np.array([n in visited for n in nexts], np.float32),     # goes back somewhere visited
+        np.array([n in linked for n in nexts], np.float32),      # goes to an entity the question names
+        np.log1p(deg) / 5.0,                                     # how connected the next entity is
+        np.full(len(facts), (hop + 1) / max_hops, np.float32),   # how far into the walk
+    ], axis=1).astype(np.float32) if len(facts) else np.zeros((0, N_CHEAP), np.float32)
+    stop_feats = np.array([hop == 0, e in linked, hop / max_hops,
+                           np.log1p(graph.degree(e)) / 5.0], np.float32)
+    return Candidates(facts, dirs, nexts, feats, stop_feats)
+
+
+def pad_candidates(cands: list) -> dict:
+    """Stack walkers' candidate lists into padded arrays (fact -1 and mask False as padding)."""
+    B = len(cands)
+    C = max([len(c.facts) for c in cands] + [1])
+    facts = np.full((B, C), -1, np.int64)
+    dirs = np.zeros((B, C), np.int8)
+    feats = np.zeros((B, C, N_CHEAP), np.float32)
+    mask = np.zeros((B, C), bool)
+    for i, c in enumerate(cands):
+        n = len(c.facts)
+        facts[i, :n], dirs[i, :n], feats[i, :n], mask[i, :n] = c.facts, c.dirs, c.feats, True
+    stop = np.stack([c.stop_feats for c in cands]) if cands else np.zeros((0, N_STOP), np.float32)
+    return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask, "stop_feats": stop}

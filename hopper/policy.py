@@ -1,0 +1,218 @@
+"""The policy: scores each fetchable fact and STOP from the walk's state; one source of its arithmetic.
+
+The forward pass is written once against a tiny array interface (``ops``) so that training
+runs it on torch tensors (for gradients) and ``ask`` runs the very same function on numpy
+arrays (no torch import on the hot path).  ``tests/test_policy.py`` checks both give the same
+probabilities.
+
+    state      z_t = tanh(q W_q + h_t W_h + b_hop[t])
+    candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
+                                                                           learned relation vector)
+    score      s_a = z_t . c_a + f_a . w_f                                 (f_a: cheap features)
+    STOP       s_0 = z_t . w_stop + g_t . w_g + b_stop
+    policy     pi(a | state) = softmax(s)
+    memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .env import N_CHEAP, N_STOP
+
+NEG = -1e9  # the score of a padded (absent) candidate
+
+PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
+    "W_q": ("D", "H"), "W_h": ("H", "H"), "b_hop": ("T", "H"),
+    "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
+    "w_f": (N_CHEAP,), "w_stop": ("H",), "w_g": (N_STOP,), "b_stop": (1,),
+    "U_h": ("H", "H"), "U_c": ("H", "H"),
+}
+
+
+class NumpyOps:
+    """The array interface on numpy (inference)."""
+
+    tanh = staticmethod(np.tanh)
+
+    @staticmethod
+    def cat(xs, axis):
+        return np.concatenate(xs, axis=axis)
+
+    @staticmethod
+    def where(mask, a, b):
+        return np.where(mask, a, b)
+
+    @staticmethod
+    def log_softmax(x):
+        m = x.max(axis=-1, keepdims=True)
+        y = x - m
+        return y - np.log(np.exp(y).sum(axis=-1, keepdims=True))
+
+    @staticmethod
+    def asarray(x, like=None):
+        return np.asarray(x)
+
+
+class TorchOps:
+    """The array interface on torch (training)."""
+
+    def __init__(self):
+        import torch
+
+        self.torch = torch
+        self.tanh = torch.tanh
+
+    def cat(self, xs, axis):
+        return self.torch.cat(xs, dim=axis)
+
+    def where(self, mask, a, b):
+        return self.torch.where(mask, a, b)
+
+    def log_softmax(self, x):
+        return self.torch.log_softmax(x, dim=-1)
+
+    def asarray(self, x, like=None):
+        if isinstance(x, self.torch.Tensor):
+            return x
+        return self.torch.as_tensor(np.asarray(x))
+
+
+def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int) -> dict:
+    """Small random weights (scaled by fan-in), as float32 numpy arrays."""
+    rng = np.random.default_rng(seed)
+    sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1}
+    params = {}
+    for name, shape in PARAM_SHAPES.items():
+        shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
+        if name.startswith("b_") or name in ("w_g",):
+            params[name] = np.zeros(shp, np.float32)
+        else:
+            fan_in = shp[-2] if len(shp) >= 2 else shp[0]
+            params[name] = (rng.standard_normal(shp) / np.sqrt(fan_in)).astype(np.float32)
+    params["w_f"][0] = 1.0  # start near similarity-following: similar text scores higher
+    return params
+
+
+def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> np.ndarray:
+    """Row of ``E`` for (relation, direction); relations unknown to the policy share the last row."""
+    rel = np.asarray(rel, np.int64)
+    slot = rel * 2 + np.asarray(direction, np.int64)
+    return np.where((rel >= 0) & (rel < n_relations), slot, 2 * n_relations)
+
+
+def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot):
+    """c_a for a flat list of N candidates.
+
+    fact_vecs [U, D] are the distinct fetchable facts' text vectors and ``inv`` [N] picks each
+    candidate's row; rel_vecs [R, D] are the relation-name vectors, ``rel`` [N] the candidate's
+    relation row, ``direction`` [N] 0/1, ``slot`` [N] its row of ``E``.  Returns [N, H].
+    """
+    fv = (fact_vecs @ P["W_v"])[ops.asarray(inv)]
+    rel, direction = ops.asarray(rel), ops.asarray(direction)
+    u = ops.where(direction[:, None] == 0, (rel_vecs @ P["W_u"][0])[rel],
+                  (rel_vecs @ P["W_u"][1])[rel])
+    return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"])
+
+
+def scores(P: dict, ops, q, h, hop, cand, feats, mask, stop_feats):
+    """Log-probabilities over [STOP, candidates...] for a batch of walkers.
+
+    q [B, D], h [B, H], hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F],
+    mask [B, C] bool (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
+    """
+    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + P["b_hop"][ops.asarray(hop)])
+    s = (cand * z[:, None, :]).sum(-1) + feats @ P["w_f"]
+    s = ops.where(ops.asarray(mask), s, NEG)
+    s_stop = (z * P["w_stop"]).sum(-1, keepdims=True) + stop_feats @ P["w_g"][:, None] + P["b_stop"]
+    return ops.log_softmax(ops.cat([s_stop, s], axis=1))
+
+
+def next_memory(P: dict, ops, h, chosen):
+    """h_{t+1} from h_t and the representation of the fetched fact."""
+    return ops.tanh(h @ P["U_h"] + chosen @ P["U_c"])
+
+
+class Policy:
+    """A trained policy: numpy weights plus the settings needed to use them."""
+
+    def __init__(self, params: dict, settings: dict, version: int | None = None,
+                 scores_: dict | None = None):
+        self.params = {k: np.asarray(v, np.float32) for k, v in params.items()}
+        self.settings = dict(settings)
+        self.version = version
+        self.scores = dict(scores_ or {})
+        self.relations = list(settings.get("relations", []))
+        self._rel_index = {r: i for i, r in enumerate(self.relations)}
+
+    @property
+    def max_hops(self) -> int:
+        return int(self.settings.get("max_hops", 4))
+
+    @property
+    def threshold(self) -> float:
+        return float(self.settings.get("threshold", 0.0))
+
+    def relation_map(self, graph_relations: list[str]) -> np.ndarray:
+        """Graph relation index -> the policy's relation index (-1: unknown to the policy)."""
+        return np.array([self._rel_index.get(r, -1) for r in graph_relations], np.int64)
+
+    # -- storage: plain float32 blobs, never pickle ----------------------------------------
+    def save(self, con, version: int, created_at, active: bool = True) -> None:
+        import json
+
+        if active:
+            con.execute("UPDATE policies SET active = false WHERE active")
+        con.execute("INSERT INTO policies VALUES (?, ?, ?, 'hopper-policy/1', ?, ?, ?)",
+                    [version, created_at, active, self.settings.get("model", ""),
+                     json.dumps(self.settings), json.dumps(self.scores)])
+        for name, arr in self.params.items():
+            arr = np.ascontiguousarray(arr, dtype="<f4")
+            con.execute("INSERT INTO policy_tensors VALUES (?, ?, ?, 'float32-le', ?)",
+                        [version, name, list(arr.shape), arr.tobytes()])
+        self.version = version
+
+    @classmethod
+    def read(cls, con, version: int | None = None) -> "Policy | None":
+        import json
+
+        from .store import first
+
+        if version is None:
+            row = first(con.execute("SELECT version, settings, scores FROM policies WHERE active "
+                              "ORDER BY version DESC LIMIT 1"))
+        else:
+            row = first(con.execute("SELECT version, settings, scores FROM policies WHERE version = ?",
+                              [version]))
+        if row is None:
+            return None
+        params = {}
+        for name, shape, dtype, data in con.execute(
+                "SELECT name, shape, dtype, data FROM policy_tensors WHERE version = ?",
+                [row[0]]).fetchall():
+            if dtype != "float32-le":
+                raise ValueError(f"policy tensor {name}: unknown dtype {dtype}")
+            params[name] = np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+        return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
+
+
+def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict):
+    """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H]).
+
+    ``batch`` comes from ``env.pad_candidates``; ``relmap`` maps the graph's relations to the
+    policy's.  Training (torch) and search (numpy) both call this, so they share every number.
+    """
+    facts = batch["facts"]
+    B, C = facts.shape
+    flat = facts.reshape(-1)
+    real = flat >= 0
+    uniq, inv = np.unique(np.where(real, flat, 0), return_inverse=True)
+    fv = ops.asarray(np.asarray(graph.fact_vecs[uniq], np.float32))
+    rv = ops.asarray(np.asarray(graph.relation_vecs, np.float32))
+    rel = graph.rel[np.where(real, flat, 0)].astype(np.int64)
+    dirs = batch["dirs"].reshape(-1).astype(np.int64)
+    slot = relation_slot(relmap[rel] if len(relmap) else np.full_like(rel, -1), dirs,
+                         (P["E"].shape[0] - 1) // 2)
+    cand = candidate_repr(P, ops, fv, inv.reshape(-1), rv, rel, dirs, slot).reshape(B, C, -1)
+    logp = scores(P, ops, q, h, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
+                  ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]))
+    return logp, cand

@@ -1,0 +1,223 @@
+"""The store: one DuckDB file with facts, embeddings, trained policies and recorded runs."""
+from __future__ import annotations
+
+import contextlib
+import os
+import random
+import time
+from pathlib import Path
+
+import duckdb
+
+from .errors import InputError, StoreBusyError
+
+SCHEMA_VERSION = 1
+DIM = 384  # the embedding width of all-MiniLM-L6-v2; the model identity is checked in meta
+
+# Every table is plain SQL so users can query a store with the duckdb client.
+SCHEMA = f"""
+CREATE TABLE IF NOT EXISTS meta (key VARCHAR PRIMARY KEY, value VARCHAR);
+CREATE TABLE IF NOT EXISTS entities (
+    entity_id INTEGER PRIMARY KEY, name VARCHAR NOT NULL UNIQUE, embedding FLOAT[{DIM}]);
+CREATE TABLE IF NOT EXISTS relations (
+    relation_id INTEGER PRIMARY KEY, name VARCHAR NOT NULL UNIQUE, embedding FLOAT[{DIM}]);
+CREATE TABLE IF NOT EXISTS facts (
+    fact_id INTEGER PRIMARY KEY,
+    subject_id INTEGER NOT NULL, relation_id INTEGER NOT NULL, object_id INTEGER NOT NULL,
+    subject VARCHAR NOT NULL, relation VARCHAR NOT NULL, object VARCHAR NOT NULL,
+    text VARCHAR NOT NULL, source VARCHAR, source_id VARCHAR,
+    content_hash VARCHAR NOT NULL UNIQUE, load_id INTEGER NOT NULL, loaded_at TIMESTAMP NOT NULL);
+CREATE TABLE IF NOT EXISTS fact_vectors (fact_id INTEGER PRIMARY KEY, embedding FLOAT[{DIM}] NOT NULL);
+CREATE TABLE IF NOT EXISTS loads (
+    load_id INTEGER PRIMARY KEY, loaded_at TIMESTAMP NOT NULL, files VARCHAR[] NOT NULL,
+    rows_read BIGINT, facts_added BIGINT, duplicates BIGINT, rejected BIGINT);
+CREATE TABLE IF NOT EXISTS policies (
+    version INTEGER PRIMARY KEY, created_at TIMESTAMP NOT NULL, active BOOLEAN NOT NULL,
+    format VARCHAR NOT NULL, model VARCHAR NOT NULL, settings JSON, scores JSON);
+CREATE TABLE IF NOT EXISTS policy_tensors (
+    version INTEGER NOT NULL, name VARCHAR NOT NULL, shape INTEGER[] NOT NULL,
+    dtype VARCHAR NOT NULL, data BLOB NOT NULL, PRIMARY KEY (version, name));
+CREATE TABLE IF NOT EXISTS runs (
+    run_id VARCHAR PRIMARY KEY, created_at TIMESTAMP NOT NULL, question VARCHAR NOT NULL,
+    subject VARCHAR, relation VARCHAR, strategy VARCHAR NOT NULL, policy_version INTEGER,
+    answer VARCHAR, confidence DOUBLE, abstained BOOLEAN NOT NULL, reason VARCHAR,
+    ranked JSON, start_entities JSON, facts_version INTEGER, elapsed_ms DOUBLE);
+CREATE TABLE IF NOT EXISTS run_fetches (
+    run_id VARCHAR NOT NULL, hop INTEGER NOT NULL, fact_id INTEGER NOT NULL,
+    probability DOUBLE NOT NULL, from_entity VARCHAR, to_entity VARCHAR,
+    alternatives JSON, PRIMARY KEY (run_id, hop));
+"""
+
+_DUCKDB_MAGIC = b"DUCK"
+LOCK_TIMEOUT = float(os.environ.get("HOPPER_LOCK_TIMEOUT", "120"))
+
+
+def first(cursor):
+    """The first row of a query (or None), reading the result to its end.
+
+    DuckDB refuses some work on a connection whose last result was not read to the end, so
+    hopper never leaves one half-read.
+    """
+    rows = cursor.fetchall()
+    return rows[0] if rows else None
+
+
+def default_path() -> Path:
+    return Path(os.environ.get("HOPPER_STORE") or "hopper.duckdb")
+
+
+def _is_lock_error(exc: Exception) -> bool:
+    text = str(exc).lower()
+    return "lock" in text and ("conflict" in text or "could not set" in text)
+
+
+class Store:
+    """A hopper store on disk.  Connections are short-lived: open, work, close.
+
+    DuckDB lets one process write a file at a time, and a reader cannot open the file while
+    another process writes it.  So every command holds a connection only for as long as it
+    reads or writes, and waits with jittered back-off when another process holds the lock.
+    """
+
+    def __init__(self, path: str | os.PathLike | None = None):
+        self.path = Path(path) if path is not None else default_path()
+
+    # -- opening -----------------------------------------------------------------------
+    def exists(self) -> bool:
+        return self.path.exists()
+
+    def check_file(self) -> None:
+        """Refuse a path that exists but is not a DuckDB file, before DuckDB touches it."""
+        if not self.path.exists():
+            return
+        if self.path.is_dir():
+            raise InputError("is a folder, not a hopper store", file=str(self.path),
+                             hint="give --store a .duckdb file path")
+        try:
+            with open(self.path, "rb") as fh:
+                head = fh.read(16)
+        except OSError as exc:
+            raise InputError(f"cannot read the store: {exc.strerror}", file=str(self.path)) from None
+        if len(head) == 0:
+            raise InputError("is an empty file, not a hopper store", file=str(self.path),
+                             hint="remove it or give --store another path")
+        if head[8:12] != _DUCKDB_MAGIC:
+            raise InputError("is not a DuckDB file; hopper will not overwrite it",
+                             file=str(self.path), hint="give --store another path")
+
+    def require(self) -> None:
+        """Raise a clear error when there is no store yet."""
+        self.check_file()
+        if not self.path.exists():
+            raise InputError("no hopper store here", file=str(self.path),
+                             hint="create one with 'hopper load FILE --store PATH'")
+
+    @contextlib.contextmanager
+    def connect(self, write: bool = False, timeout: float | None = None):
+        """Yield a DuckDB connection, waiting for another process's lock to be released.
+
+        ``write=True`` creates the file and schema when missing.  Read connections require an
+        existing store.
+        """
+        if write:
+            self.check_file()
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+        else:
+            self.require()
+        deadline = time.monotonic() + (LOCK_TIMEOUT if timeout is None else timeout)
+        delay = 0.02
+        while True:
+            try:
+                con = duckdb.connect(str(self.path), read_only=not write)
+                break
+            except duckdb.Error as exc:
+                if not _is_lock_error(exc):
+                    if "not a valid duckdb" in str(exc).lower() or "unable to open" in str(exc).lower():
+                        raise InputError(f"cannot open as a DuckDB store: {str(exc).splitlines()[0]}",
+                                         file=str(self.path)) from None
+                    raise
+                if time.monotonic() > deadline:
+                    raise StoreBusyError(
+                        f"{self.path}: another process has held the store for too long; try again "
+                        "(HOPPER_LOCK_TIMEOUT sets the wait in seconds)") from None
+                time.sleep(delay * (0.5 + random.random()))
+                delay = min(delay * 2, 0.5)
+        try:
+            if write:
+                self._ensure_schema(con)
+            elif not self._has_schema(con):
+                raise InputError("is a DuckDB file but not a hopper store", file=str(self.path),
+                                 hint="give --store a hopper store or a new path")
+            yield con
+        finally:
+            con.close()
+
+    @contextlib.contextmanager
+    def transaction(self, timeout: float | None = None):
+        """A write connection inside one transaction: all of it lands, or none of it."""
+        with self.connect(write=True, timeout=timeout) as con:
+            con.execute("BEGIN TRANSACTION")
+            try:
+                yield con
+            except BaseException:
+                con.execute("ROLLBACK")
+                raise
+            con.execute("COMMIT")
+
+    @staticmethod
+    def _has_schema(con) -> bool:
+        row = first(con.execute("SELECT count(*) FROM information_schema.tables "
+                          "WHERE table_name = 'meta' AND table_schema = 'main'"))
+        if not row[0]:
+            return False
+        return first(con.execute("SELECT count(*) FROM meta WHERE key = 'schema_version'"))[0] > 0
+
+    def _ensure_schema(self, con) -> None:
+        if self._has_schema(con):
+            return
+        tables = first(con.execute("SELECT count(*) FROM information_schema.tables "
+                             "WHERE table_schema = 'main'"))[0]
+        if tables:
+            raise InputError("is a DuckDB file with other tables, not a hopper store; "
+                             "hopper will not change it", file=str(self.path),
+                             hint="give --store another path")
+        con.execute("BEGIN TRANSACTION")
+        con.execute(SCHEMA)
+        con.execute("INSERT INTO meta VALUES ('schema_version', ?), ('facts_version', '0')",
+                    [str(SCHEMA_VERSION)])
+        con.execute("COMMIT")
+
+    # -- small helpers -------------------------------------------------------------------
+    @staticmethod
+    def get_meta(con, key: str, default: str | None = None) -> str | None:
+        row = first(con.execute("SELECT value FROM meta WHERE key = ?", [key]))
+        return row[0] if row else default
+
+    @staticmethod
+    def set_meta(con, key: str, value: str) -> None:
+        con.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", [key, value])
+
+    def info(self) -> dict:
+        """Counts and the active policy, as in the command-line contract."""
+        import json
+
+        with self.connect() as con:
+            facts, entities, relations, runs = first(con.execute(
+                "SELECT (SELECT count(*) FROM facts), (SELECT count(*) FROM entities), "
+                "(SELECT count(*) FROM relations), (SELECT count(*) FROM runs)"))
+            model = self.get_meta(con, "model_name")
+            dim = self.get_meta(con, "model_dim")
+            digest = self.get_meta(con, "model_sha256")
+            row = first(con.execute("SELECT version, created_at, settings, scores FROM policies "
+                              "WHERE active ORDER BY version DESC LIMIT 1"))
+            n_policies = first(con.execute("SELECT count(*) FROM policies"))[0]
+        policy = None
+        if row:
+            policy = {"version": row[0], "created_at": row[1].isoformat(timespec="seconds"),
+                      "versions": n_policies, "settings": json.loads(row[2] or "{}"),
+                      "scores": json.loads(row[3] or "{}")}
+        return {"facts": int(facts), "entities": int(entities), "relations": int(relations),
+                "runs": int(runs),
+                "model": model or "none", "model_dim": int(dim) if dim else None,
+                "model_sha256": digest,
+                "policy": policy, "store": str(self.path)}

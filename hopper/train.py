@@ -1,0 +1,337 @@
+"""Training: REINFORCE with reward-to-go, a leave-one-out baseline, an entropy bonus and action dropout.
+
+For each question the policy walks K times (rollouts).  A walk earns R = 1 if it stops on a
+gold answer, else 0, less ``fetch_cost`` per fetch.  With r_t the reward at hop t,
+
+    reward-to-go      G_t = sum_{t' >= t} r_t'
+    baseline          b_t = mean of G_t over the question's other K - 1 rollouts (leave one out)
+    policy gradient   grad J = E[ sum_t (G_t - b_t) grad log pi(a_t | s_t) ]      (Williams 1992)
+
+and the loss minimised is  - sum_t (G_t - b_t) log pi(a_t | s_t) - beta * H(pi(. | s_t)).
+"""
+from __future__ import annotations
+
+import math
+import sys
+import time
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from . import policy as pol
+from .env import Graph, Walker, candidates, pad_candidates
+from .errors import InputError
+
+
+@dataclass
+class TrainSettings:
+    """Every knob of a training run; stored with the policy so a run can be repeated."""
+
+    max_hops: int = 4
+    hidden: int = 64
+    rollouts: int = 8           # K walks per question, for the leave-one-out baseline
+    batch_questions: int = 32
+    epochs: int = 25
+    lr: float = 3e-3
+    entropy: float = 0.02       # beta, the entropy bonus
+    action_dropout: float = 0.1  # chance each fact is hidden from the sampler (exploration)
+    fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
+    grad_clip: float = 1.0
+    patience: int = 5           # epochs without a better validation score before stopping
+    beam: int = 16
+    seed: int = 0
+    time_budget: float = 0.0    # seconds; 0 = no limit
+
+    def validate(self) -> None:
+        checks = {
+            "max_hops": 1 <= self.max_hops <= 8, "hidden": 4 <= self.hidden <= 1024,
+            "rollouts": 2 <= self.rollouts <= 256, "batch_questions": self.batch_questions >= 1,
+            "epochs": self.epochs >= 1, "lr": 0 < self.lr < 1, "entropy": self.entropy >= 0,
+            "action_dropout": 0 <= self.action_dropout < 1, "fetch_cost": 0 <= self.fetch_cost < 1,
+            "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
+            "beam": 1 <= self.beam <= 256, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
+        }
+        for name, ok in checks.items():
+            if not ok:
+                raise InputError(f"out of range: {getattr(self, name)!r}", field=name)
+
+
+@dataclass
+class Episode:
+    """A training or evaluation question, resolved against the graph."""
+
+    qvec: np.ndarray
+    starts: list
+    gold: frozenset
+    hidden: frozenset = frozenset()
+    hops: int | None = None
+    prerank: dict = field(default_factory=dict)
+
+
+def reward_to_go(rewards: np.ndarray) -> np.ndarray:
+    """G_t = sum_{t' >= t} r_t' along the last axis (rewards [..., T])."""
+    return np.flip(np.cumsum(np.flip(rewards, -1), -1), -1)
+
+
+def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
+    """Leave-one-out mean of G_t over the other rollouts of the same question at the same hop.
+
+    returns, active: [Q, K, T].  Where no other rollout was still walking at hop t the
+    baseline is 0.
+    """
+    g = returns * active
+    total, count = g.sum(1, keepdims=True), active.sum(1, keepdims=True)
+    others = count - active
+    return np.where(others > 0, (total - g) / np.maximum(others, 1), 0.0)
+
+
+def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
+            gen, rng: np.random.Generator, greedy: bool = False):
+    """Sample K walks per episode with the torch policy ``P``.
+
+    Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
+    final entity [B], fetch counts [B], last hop [B]), with B = len(eps) * K.
+    """
+    torch = ops.torch
+    B = len(eps) * K
+    walkers = [Walker(ep.starts[k % len(ep.starts)], (), (ep.starts[k % len(ep.starts)],))
+               for ep in eps for k in range(K)]
+    owner = [ep for ep in eps for _ in range(K)]
+    q = torch.as_tensor(np.stack([ep.qvec for ep in owner]))
+    H = P["W_h"].shape[0]
+    h = torch.zeros(B, H)
+    alive = np.ones(B, bool)
+    logps, ents = [], []
+    active = np.zeros((B, T), np.float32)
+    fetches = np.zeros(B, np.int64)
+    for t in range(T):
+        idx = np.flatnonzero(alive)
+        step_logp = torch.zeros(B)
+        step_ent = torch.zeros(B)
+        if len(idx) == 0:
+            logps.append(step_logp)
+            ents.append(step_ent)
+            continue
+        cands = [candidates(graph, walkers[i], owner[i].qvec, t, T, frozenset(owner[i].starts),
+                            owner[i].hidden, prerank_cache=owner[i].prerank) for i in idx]
+        batch = pad_candidates(cands)
+        logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch)
+        with torch.no_grad():
+            probs = logp.exp()
+            if greedy:
+                a = probs.argmax(-1)
+            else:
+                if dropout > 0:  # action dropout: hide some facts from the sampler (never STOP)
+                    keep = torch.as_tensor(rng.random(tuple(probs.shape)) >= dropout)
+                    keep[:, 0] = True
+                    p2 = probs * keep
+                    empty = p2.sum(-1, keepdim=True) <= 0
+                    probs = torch.where(empty, probs, p2)
+                a = torch.multinomial(probs / probs.sum(-1, keepdim=True), 1, generator=gen)[:, 0]
+        rows = torch.arange(len(idx))
+        it = torch.as_tensor(idx)
+        step_logp = step_logp.index_put((it,), logp[rows, a])
+        ent = -(logp.exp() * logp.clamp(min=-50.0)).sum(-1)
+        step_ent = step_ent.index_put((it,), ent)
+        logps.append(step_logp)
+        ents.append(step_ent)
+        active[idx, t] = 1.0
+        a_np = a.numpy()
+        moved = np.flatnonzero(a_np > 0)
+        for m in moved:
+            i, j = idx[m], a_np[m] - 1
+            c = cands[m]
+            f, e = int(c.facts[j]), int(c.nexts[j])
+            walkers[i] = Walker(e, walkers[i].fetched + (f,), walkers[i].visited + (e,))
+            fetches[i] += 1
+        alive[idx[a_np == 0]] = False
+        if len(moved):
+            chosen = crepr[torch.as_tensor(moved), torch.as_tensor(a_np[moved] - 1)]
+            h = h.index_put((torch.as_tensor(idx[moved]),),
+                            pol.next_memory(P, ops, h[torch.as_tensor(idx[moved])], chosen))
+    final = np.array([w.entity for w in walkers])
+    correct = np.array([final[i] in owner[i].gold for i in range(B)], np.float32)
+    last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
+    return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
+
+
+def episode_rewards(correct, active, fetches, last, fetch_cost: float) -> np.ndarray:
+    """r_t for every walk: -fetch_cost on each hop that fetched, +1 on the last hop if right."""
+    B, T = active.shape
+    rewards = np.zeros((B, T), np.float32)
+    for i in range(B):
+        rewards[i, :int(fetches[i])] -= fetch_cost
+        rewards[i, last[i]] += correct[i]
+    return rewards
+
+
+def reinforce_loss(logp, ent, rewards, active, K: int, entropy_weight: float):
+    """The REINFORCE loss with reward-to-go and the leave-one-out baseline (see module doc)."""
+    import torch
+
+    B, T = active.shape
+    G = reward_to_go(rewards)                                          # G_t
+    b = loo_baseline(G.reshape(-1, K, T), active.reshape(-1, K, T)).reshape(B, T)  # b_t
+    adv = torch.as_tensor((G - b) * active, dtype=torch.float32)      # (G_t - b_t), 0 off-walk
+    act = torch.as_tensor(active)
+    n = max(float(active.sum()), 1.0)
+    pg = -(adv * logp).sum() / len(adv)                              # - sum_t A_t log pi(a_t|s_t)
+    bonus = (ent * act).sum() / n                                     # mean entropy of pi
+    return pg - entropy_weight * bonus
+
+
+def episodes(graph: Graph, questions: list, qvecs: np.ndarray) -> list[Episode]:
+    """Resolve questions against the graph: start entities, gold answers, hidden facts."""
+    out = []
+    for q, v in zip(questions, qvecs):
+        if q.is_completion:
+            s = graph.entity_index(q.subject)
+            starts = [s] if s is not None else []
+        else:
+            starts = graph.link(q.text, v)
+        gold = frozenset(e for e in (graph.entity_index(a) for a in q.answers) if e is not None)
+        hidden = frozenset()
+        if q.is_completion and starts:
+            hidden = hidden_facts(graph, starts[0], q.relation, gold)
+        out.append(Episode(np.asarray(v, np.float32), starts, gold, hidden, q.hops))
+    return out
+
+
+def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
+    """The facts that state a completion answer directly, hidden from the walk during training."""
+    facts, dirs = graph.neighbours(subject)
+    try:
+        r = graph.relation_names.index(relation)
+    except ValueError:
+        return frozenset()
+    return frozenset(int(f) for f, d in zip(facts, dirs)
+                     if d == 0 and graph.rel[f] == r and int(graph.obj[f]) in gold)
+
+
+def hits_and_rank(outcome, gold: frozenset) -> tuple[float, float]:
+    """(Hits@1, reciprocal rank) of a ranked answer list against the gold set."""
+    for rank, (e, _) in enumerate(outcome.ranked, start=1):
+        if e in gold:
+            return float(rank == 1), 1.0 / rank
+    return 0.0, 0.0
+
+
+def _numpy_params(P) -> dict:
+    return {k: v.detach().numpy().copy() for k, v in P.items()}
+
+
+def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
+    """Beam-search every episode; return (Hits@1, MRR, [(confidence, correct)])."""
+    from .search import beam_search
+
+    relmap = policy.relation_map(graph.relation_names)
+    hits, rr, conf = [], [], []
+    for ep in eps:
+        out = beam_search(graph, policy, ep.qvec, ep.starts, beam=beam, hidden=ep.hidden,
+                          relmap=relmap)
+        h, r = hits_and_rank(out, ep.gold)
+        hits.append(h)
+        rr.append(r)
+        conf.append((out.confidence, h))
+    return float(np.mean(hits)) if hits else 0.0, float(np.mean(rr)) if rr else 0.0, conf
+
+
+def choose_threshold(conf: list) -> float:
+    """The confidence below which to abstain: maximise (right answers - wrong answers) kept."""
+    if not conf:
+        return 0.0
+    pairs = sorted(conf)
+    best_t, best = 0.0, sum(1 if h else -1 for _, h in pairs)
+    right = sum(h for _, h in pairs)
+    wrong = len(pairs) - right
+    for c, h in pairs:  # raising the threshold past c drops this answer
+        right -= h
+        wrong -= 1 - h
+        if right - wrong > best:
+            best, best_t = right - wrong, c + 1e-6
+    return float(best_t)
+
+
+def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
+        progress: bool | None = None, log=None) -> tuple[pol.Policy, dict]:
+    """Train a policy on ``train_eps``, early-stopping on ``valid_eps``; return it and a summary."""
+    import torch
+
+    settings.validate()
+    if progress is None:
+        progress = sys.stderr.isatty()
+    train_eps = [e for e in train_eps if e.starts and e.gold]
+    if not train_eps:
+        raise InputError("no training question names an entity of the store with a known answer",
+                         field="questions", hint="check the questions match the loaded facts")
+    torch.manual_seed(settings.seed)
+    gen = torch.Generator().manual_seed(settings.seed)
+    rng = np.random.default_rng(settings.seed)
+    n_rel = len(graph.relation_names)
+    init = pol.init_params(graph.fact_vecs.shape[1], settings.hidden, n_rel, settings.max_hops,
+                           settings.seed)
+    P = {k: torch.tensor(v, requires_grad=True) for k, v in init.items()}
+    opt = torch.optim.Adam(P.values(), lr=settings.lr)
+    ops = pol.TorchOps()
+    relmap = np.arange(n_rel)
+    base_settings = asdict(settings) | {"relations": list(graph.relation_names)}
+    curve = []
+    best = (-1.0, -1.0)
+    best_params = _numpy_params(P)
+    stale = 0
+    started = time.monotonic()
+    rollouts_done = 0
+    n_batches = math.ceil(len(train_eps) / settings.batch_questions)
+    bar = None
+    if progress:
+        from tqdm import tqdm
+        bar = tqdm(total=settings.epochs * n_batches, desc="training", unit="batch", file=sys.stderr)
+    for epoch in range(settings.epochs):
+        order = rng.permutation(len(train_eps))
+        rewards_seen = []
+        for bi in range(n_batches):
+            batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
+            logp, ent, correct, active, final, fetches, last = rollout(
+                P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
+                settings.action_dropout, gen, rng)
+            rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
+            loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy)
+            opt.zero_grad()
+            loss.backward()
+            torch.nn.utils.clip_grad_norm_(list(P.values()), settings.grad_clip)
+            opt.step()
+            rollouts_done += len(correct)
+            rewards_seen.append(float(correct.mean()))
+            if bar is not None:
+                bar.update(1)
+                bar.set_postfix(reward=f"{np.mean(rewards_seen):.3f}")
+        policy = pol.Policy(_numpy_params(P), base_settings)
+        vh, vm, _ = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (
+            float(np.mean(rewards_seen)), 0.0, [])
+        curve.append({"epoch": epoch + 1, "train_reward": float(np.mean(rewards_seen)),
+                      "valid_hits1": vh, "valid_mrr": vm,
+                      "seconds": round(time.monotonic() - started, 1)})
+        if log:
+            log(f"epoch {epoch + 1}: train reward {np.mean(rewards_seen):.3f}, "
+                f"valid Hits@1 {vh:.3f}, MRR {vm:.3f}")
+        if (vh, vm) > best:
+            best, best_params, stale = (vh, vm), _numpy_params(P), 0
+        else:
+            stale += 1
+        if stale >= settings.patience:
+            break
+        if settings.time_budget and time.monotonic() - started > settings.time_budget:
+            break
+    if bar is not None:
+        bar.close()
+    elapsed = time.monotonic() - started
+    policy = pol.Policy(best_params, base_settings)
+    vh, vm, conf = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (0.0, 0.0, [])
+    policy.settings["threshold"] = choose_threshold(conf)
+    summary = {"epochs": len(curve), "seconds": round(elapsed, 1),
+               "rollouts_per_second": round(rollouts_done / max(elapsed, 1e-9), 1),
+               "train_questions": len(train_eps), "valid_questions": len(valid_eps),
+               "valid_hits1": vh, "valid_mrr": vm, "threshold": policy.settings["threshold"],
+               "curve": curve}
+    policy.scores = {k: v for k, v in summary.items() if k != "curve"}
+    return policy, summary

@@ -1,0 +1,195 @@
+"""Tests of hopper.embed with the real bundled model: parity of the fast path, shapes, isolation from torch."""
+
+import hashlib
+import json
+import os
+import pathlib
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from hopper import embed
+
+REPO = pathlib.Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def cache(tmp_path_factory):
+    """A cache folder of this module's own, so the export is really made (and checked) here."""
+    path = tmp_path_factory.mktemp("hopper-cache")
+    mp = pytest.MonkeyPatch()
+    mp.setenv("HOPPER_CACHE", str(path))
+    yield path
+    mp.undo()
+
+
+@pytest.fixture(scope="module")
+def fast(cache):
+    return embed.Encoder("fast")
+
+
+@pytest.fixture(scope="module")
+def reference(cache):
+    return embed.Encoder("reference")
+
+
+def varied_texts() -> list[str]:
+    """A few hundred texts of every kind the store and the questions may hold."""
+    subjects = ["Marie Curie", "Barack Obama", "the Eiffel Tower", "Tokyo", "Python (language)",
+                "Ludwig van Beethoven", "Mount Kilimanjaro", "the Amazon River", "Ada Lovelace",
+                "São Paulo", "Zürich", "Nelson Mandela"]
+    relations = ["was born in", "is located in", "was designed by", "is the capital of",
+                 "won the award", "has population", "was founded in", "flows through"]
+    objects = ["Warsaw", "Honolulu", "Gustave Eiffel", "Japan", "1991", "the Nobel Prize",
+               "Tanzania", "Brazil", "Switzerland", "8,336,817"]
+    texts = []
+    for i, s in enumerate(subjects):
+        for j, r in enumerate(relations):
+            o = objects[(i * 3 + j) % len(objects)]
+            texts.append(f"{s} {r} {o}.")
+            if (i + j) % 3 == 0:
+                texts.append(f"{s} | {r.replace(' ', '_')} | {o}")
+    texts += [f"Where was the person who {r} {o} born?" for r in relations for o in objects[:4]]
+    long_words = ("the committee reviewed every archived record of the expedition and its "
+                  "supply lines before publishing a revised account of the route ").split()
+    for n in (120, 255, 256, 300, 600, 2000):
+        texts.append(" ".join(long_words[k % len(long_words)] for k in range(n)))
+    texts.append("Antidisestablishmentarianism " * 200)
+    texts += [
+        "東京は日本の首都です。", "北京是中华人民共和国的首都。", "서울은 대한민국의 수도이다.",
+        "Москва — столица России.", "القاهرة هي عاصمة مصر.", "नई दिल्ली भारत की राजधानी है।",
+        "Η Αθήνα είναι η πρωτεύουσα της Ελλάδας.", "ירושלים היא עיר עתיקה.",
+        "กรุงเทพมหานครเป็นเมืองหลวงของประเทศไทย", "Tbilisi თბილისი", "Ελλάδα & Россия & 日本",
+        "Lévi-Strauss était un anthropologue français.", "Ærøskøbing ligger på Ærø.",
+        "🙂", "🙂🙂🙂🙂", "I ❤️ NY 🗽🍎", "👩‍👩‍👧‍👦 family emoji", "🇫🇷 is the flag of France",
+        "!!!???", "...", "—", "?", "a", "A", "x y z", "#$%^&*()", "<b>bold</b> & <i>it</i>",
+        "C:\\Users\\test\\file.txt", "https://example.org/path?q=1&r=2", "user@example.com",
+        "f(x) = x^2 + 3x - 7", "1234567890", "3.14159", "2024-01-31T12:00:00Z",
+        "def f(x):\n    return x + 1", "tab\tseparated\tvalues", "line one\nline two",
+        "ALL CAPS SENTENCE ABOUT PARIS", "mIxEd CaSe TeXt", "  leading and trailing spaces  ",
+        " ", "", "\n", "\t", "   \n\t  ", "\u200b", "\u00a0", "\x00",
+    ]
+    return texts
+
+
+def test_varied_texts_are_a_few_hundred_and_include_overlong_ones():
+    texts = varied_texts()
+    assert 200 <= len(texts) <= 600
+    from tokenizers import Tokenizer
+
+    tok = Tokenizer.from_file(str(embed.model_dir() / "tokenizer.json"))
+    tok.no_truncation()
+    assert sum(len(tok.encode(t).ids) > 256 for t in texts) >= 4
+
+
+def test_fast_matches_reference(fast, reference):
+    # The reference is the sentence-transformers library's own encoder for this model
+    # (a general-purpose reference library), run on CPU: the fast path must agree with it.
+    texts = varied_texts()
+    got = fast.encode(texts, batch_size=32)
+    want = reference.encode(texts, batch_size=32)
+    cos = np.sum(got * want, axis=1)
+    worst = int(np.argmin(cos))
+    assert cos.min() >= 0.999, (texts[worst][:80], float(cos[worst]))
+    assert np.abs(got - want).max() < 0.01
+
+
+def test_paraphrases_are_closer_than_unrelated_sentences(fast, reference):
+    a = "A man is playing a guitar."
+    b = "Someone is playing an acoustic guitar."
+    c = "The central bank raised interest rates again."
+    for enc in (fast, reference):
+        va, vb, vc = enc.encode([a, b, c])
+        assert float(va @ vb) > float(va @ vc) + 0.3
+        assert float(va @ vb) > float(vb @ vc) + 0.3
+
+
+@pytest.mark.parametrize("which", ["fast", "reference"])
+def test_shape_dtype_norm_and_empty(which, fast, reference):
+    enc = fast if which == "fast" else reference
+    texts = ["Paris is the capital of France.", " ", "", "🙂"]
+    v = enc.encode(texts)
+    assert v.shape == (4, embed.DIM) and v.dtype == np.float32
+    assert np.allclose(np.linalg.norm(v, axis=1), 1.0, atol=1e-5)
+    assert np.isfinite(v).all()
+    empty = enc.encode([])
+    assert empty.shape == (0, embed.DIM) and empty.dtype == np.float32
+
+
+def test_order_is_preserved_whatever_the_batching(fast):
+    texts = varied_texts()[:150]
+    rng = np.random.default_rng(7)
+    perm = rng.permutation(len(texts))
+    base = fast.encode(texts, batch_size=64)
+    shuffled = fast.encode([texts[i] for i in perm], batch_size=7)
+    assert np.allclose(shuffled, base[perm], atol=1e-4)
+    one_by_one = np.stack([fast.encode([t], batch_size=1)[0] for t in texts[:20]])
+    assert np.allclose(one_by_one, base[:20], atol=1e-4)
+
+
+def test_encode_rejects_bad_input(fast):
+    with pytest.raises(TypeError):
+        fast.encode("a single string")
+    with pytest.raises(TypeError):
+        fast.encode(["ok", None])
+    with pytest.raises(ValueError):
+        fast.encode(["ok"], batch_size=0)
+    with pytest.raises(ValueError):
+        embed.Encoder("gpu")
+
+
+def test_auto_uses_the_cached_export(fast):
+    assert embed.Encoder("auto").backend == "fast"
+
+
+def test_export_is_cached_once_and_leaves_no_temporaries(cache, fast):
+    path = embed.ensure_fast_model()
+    assert path.is_file() and path.name == "model.onnx"
+    assert path.parent.parent == cache / "onnx"
+    mtime = path.stat().st_mtime_ns
+    assert embed.ensure_fast_model() == path and path.stat().st_mtime_ns == mtime
+    leftovers = [p.name for p in (cache / "onnx").iterdir() if p.name.startswith(".")]
+    assert leftovers == []
+
+
+def test_model_identity_and_its_hash_cache(cache):
+    weights = embed.model_dir() / "model.safetensors"
+    ident = embed.model_identity()
+    assert ident["name"] == embed.MODEL_NAME == "all-MiniLM-L6-v2"
+    assert ident["dim"] == embed.DIM == 384
+    assert ident["weights_sha256"] == hashlib.sha256(weights.read_bytes()).hexdigest()
+    table = json.loads((cache / "weights-sha256.json").read_text())
+    assert ident["weights_sha256"] in table.values()
+
+
+def test_cache_dir_precedence(monkeypatch, tmp_path):
+    monkeypatch.setenv("HOPPER_CACHE", str(tmp_path / "a"))
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "x"))
+    assert embed.cache_dir() == tmp_path / "a"
+    monkeypatch.delenv("HOPPER_CACHE")
+    assert embed.cache_dir() == tmp_path / "x" / "hopper"
+    monkeypatch.delenv("XDG_CACHE_HOME")
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    assert embed.cache_dir() == tmp_path / "home" / ".cache" / "hopper"
+
+
+def test_fast_path_in_a_fresh_process_imports_no_torch(cache, fast):
+    code = (
+        "import sys, json\n"
+        "from hopper import embed\n"
+        "enc = embed.Encoder('fast')\n"
+        "v = enc.encode(['Where was Marie Curie born?'])\n"
+        "auto = embed.Encoder('auto').backend\n"
+        "heavy = sorted(m for m in sys.modules\n"
+        "               if m.split('.')[0] in ('torch', 'transformers', 'sentence_transformers'))\n"
+        "print(json.dumps({'shape': list(v.shape), 'heavy': heavy, 'auto': auto}))\n"
+    )
+    env = dict(os.environ, HOPPER_CACHE=str(cache))
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (str(REPO), env.get("PYTHONPATH")) if p)
+    proc = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=env,
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    out = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert out == {"shape": [1, embed.DIM], "heavy": [], "auto": "fast"}
