@@ -152,7 +152,7 @@ class Hopper:
             n_valid = max(1, len(qs) // 10) if len(qs) >= 10 else 0
             vs = [qs[i] for i in order[:n_valid]]
             qs = [qs[i] for i in order[n_valid:]]
-        graph = self._graph_now()
+        graph = self._graph_now().in_memory()
         vecs = self._encode([q.text for q in qs + vs])
         train_eps = tr.episodes(graph, qs, vecs[:len(qs)])
         valid_eps = [e for e in tr.episodes(graph, vs, vecs[len(qs):]) if e.starts and e.gold]
@@ -239,6 +239,29 @@ class Hopper:
             results.append((q, out, (time.perf_counter() - t0) * 1000))
         return self._report(graph, policy, strategy, results, top, record)
 
+    def rerun(self, question: str, *, subject: str | None = None, relation: str | None = None,
+              strategy: str = "policy", policy_version: int | None = None,
+              hidden_fact_ids=(), top: int = 10) -> dict:
+        """Answer again without recording: for audits (replay, counterfactuals).
+
+        ``policy_version`` picks a stored policy (default: the active one); facts whose ids
+        are in ``hidden_fact_ids`` cannot be fetched.
+        """
+        _check_choice("strategy", strategy, STRATEGIES)
+        obj = {"question": question}
+        if subject is not None:
+            obj.update(subject=subject, relation=relation)
+        q = make_question(obj, need_answer=False)
+        graph = self._graph_now()
+        policy = self._policy(policy_version) if strategy == "policy" else \
+            self._policy(policy_version, required=False)
+        hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
+        qvec = self._encode([q.text])[0]
+        t0 = time.perf_counter()
+        out = self._solve(graph, policy, strategy, q, qvec, hidden=hidden)
+        return self._report(graph, policy, strategy, [(q, out, (time.perf_counter() - t0) * 1000)],
+                            top, record=False)[0]
+
     def _starts(self, graph, q: Question, qvec):
         if q.is_completion:
             s = graph.entity_index(q.subject)
@@ -258,10 +281,10 @@ class Hopper:
                               f"{policy.threshold:.2f} set on the validation questions")
         elif strategy == "greedy":
             hops = int(policy.settings.get("greedy_hops", 2)) if policy else 2
-            out = greedy(graph, qvec, starts, hops=hops)
+            out = greedy(graph, qvec, starts, hops=hops, hidden=hidden)
         else:
             hops = int(policy.settings.get("walk_hops", 2)) if policy else 2
-            out = walk(graph, qvec, starts, hops=hops)
+            out = walk(graph, qvec, starts, hops=hops, hidden=hidden)
         if q.is_completion and not starts:
             out.reason = f"the subject '{q.subject}' is not an entity of the store"
         return out
@@ -338,6 +361,12 @@ class Hopper:
     # -- evaluation --------------------------------------------------------------------------------
     def evaluate(self, questions, strategies=STRATEGIES) -> dict:
         """Hits@1, MRR, mean fetches and ms per question for each strategy, on the same questions."""
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._evaluate(questions, strategies)
+
+    def _evaluate(self, questions, strategies) -> dict:
         from .train import episodes, hits_and_rank
 
         for s in strategies:

@@ -153,6 +153,12 @@ class Graph:
         names = json.loads((cache / "names.json").read_text("utf-8"))
         return cls(arrays, names["entities"], names["relations"], version)
 
+    def in_memory(self) -> "Graph":
+        """Copy memory-mapped arrays into RAM (training reads them many thousand times)."""
+        for name in self._ARRAYS:
+            setattr(self, name, np.array(getattr(self, name)))
+        return self
+
     # -- lookups -------------------------------------------------------------------------
     @property
     def n_facts(self) -> int:
@@ -280,10 +286,18 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     facts, dirs = facts[keep], dirs[keep]
     is_dense = np.zeros(len(facts), np.float32)
     if dense and graph.n_facts:
-        query = qvec + (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0)
-                        if walker.fetched else 0.0)
-        query = query / max(float(np.linalg.norm(query)), 1e-9)
-        extra = graph.dense_search(query, DENSE_K, exclude=fetched | set(map(int, facts)) | hidden)
+        dkey = ("dense", walker.fetched)
+        if prerank_cache is not None and dkey in prerank_cache:
+            extra = prerank_cache[dkey]
+        else:
+            query = qvec + (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0)
+                            if walker.fetched else 0.0)
+            query = query / max(float(np.linalg.norm(query)), 1e-9)
+            extra = graph.dense_search(query, DENSE_K + ADJ_CAP, exclude=fetched | hidden)
+            if prerank_cache is not None:
+                prerank_cache[dkey] = extra
+        offered = set(map(int, facts))
+        extra = np.array([f for f in extra if int(f) not in offered][:DENSE_K], np.int64)
         if len(extra):
             facts = np.concatenate([facts, extra, extra])
             dirs = np.concatenate([dirs, np.zeros(len(extra), np.int8), np.ones(len(extra), np.int8)])

@@ -87,10 +87,12 @@ def beam_search(graph: Graph, policy: pol.Policy, qvec: np.ndarray, starts: list
     live = [_Beam(Walker(s, (), (s,)), np.zeros(H, np.float32), -math.log(len(starts)))
             for s in starts]
     finished: list[_Beam] = []
+    cache: dict = {}  # pre-ranked neighbours and dense results, shared by this question's beams
     for t in range(T):
         if not live:
             break
-        cands = [candidates(graph, b.walker, qvec, t, T, linked, hidden) for b in live]
+        cands = [candidates(graph, b.walker, qvec, t, T, linked, hidden, prerank_cache=cache)
+                 for b in live]
         batch = pad_candidates(cands)
         n = len(live)
         logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(qvec[None, :], n, 0),
@@ -134,7 +136,8 @@ def _answer_end(graph: Graph, fact: int, seen: set) -> tuple[int, int]:
     return s, 1
 
 
-def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: int = 50) -> Outcome:
+def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: int = 50,
+           hidden: frozenset = frozenset()) -> Outcome:
     """Baseline: fetch the fact most similar to the question plus the texts fetched so far."""
     fetched: list[int] = []
     steps: list[Fetch] = []
@@ -144,7 +147,7 @@ def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: in
     for t in range(hops):
         query = qvec + (np.asarray(graph.fact_vecs[fetched]).sum(0) if fetched else 0.0)
         query = query / max(float(np.linalg.norm(query)), 1e-9)
-        top = graph.dense_search(query, pool, exclude=fetched)
+        top = graph.dense_search(query, pool, exclude=set(fetched) | hidden)
         if len(top) == 0:
             break
         sims = np.asarray(graph.fact_vecs[top]) @ query
@@ -164,7 +167,8 @@ def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: in
     return out
 
 
-def walk(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2) -> Outcome:
+def walk(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2,
+         hidden: frozenset = frozenset()) -> Outcome:
     """Baseline: from the linked entity, follow the touching fact most similar to the question."""
     if not starts:
         return Outcome([], [], starts, 0.0, True, "no entity of the store is named in the question")
@@ -174,7 +178,7 @@ def walk(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2) -> Outcome
     ranked: dict = {}
     for t in range(hops):
         facts, dirs = graph.neighbours(here)
-        keep = [i for i, f in enumerate(facts) if int(f) not in fetched]
+        keep = [i for i, f in enumerate(facts) if int(f) not in fetched and int(f) not in hidden]
         if not keep:
             break
         facts, dirs = np.asarray(facts)[keep], np.asarray(dirs)[keep]

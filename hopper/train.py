@@ -255,6 +255,13 @@ def choose_threshold(conf: list) -> float:
 def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
         progress: bool | None = None, log=None) -> tuple[pol.Policy, dict]:
     """Train a policy on ``train_eps``, early-stopping on ``valid_eps``; return it and a summary."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):  # small products: threads only wait
+        return _fit(graph, train_eps, valid_eps, settings, progress, log)
+
+
+def _fit(graph, train_eps, valid_eps, settings, progress, log):
     import torch
 
     settings.validate()
