@@ -101,6 +101,13 @@ class Hopper:
                              hint="run 'hopper train --questions FILE', or use --strategy greedy or walk")
         return policy
 
+    def _baseline_settings(self):
+        """The active policy, if readable, only for the baselines' tuned hop counts."""
+        try:
+            return self._policy(required=False)
+        except InputError:
+            return None
+
     def _questions(self, questions, need_answer=True) -> list[Question]:
         if isinstance(questions, (str, Path)):
             return read_questions(questions, need_answer=need_answer)
@@ -230,7 +237,7 @@ class Hopper:
         qs = self._questions(questions, need_answer=False)
         self.store.require()
         graph = self._graph_now()
-        policy = self._policy() if strategy == "policy" else None
+        policy = self._policy() if strategy == "policy" else self._baseline_settings()
         vecs = self._encode([q.text for q in qs])
         results = []
         for q, v in zip(qs, vecs):
@@ -254,7 +261,7 @@ class Hopper:
         q = make_question(obj, need_answer=False)
         graph = self._graph_now()
         policy = self._policy(policy_version) if strategy == "policy" else \
-            self._policy(policy_version, required=False)
+            self._baseline_settings()
         hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
         qvec = self._encode([q.text])[0]
         t0 = time.perf_counter()
@@ -373,7 +380,7 @@ class Hopper:
             _check_choice("strategy", s, STRATEGIES)
         qs = self._questions(questions)
         graph = self._graph_now()
-        policy = self._policy(required="policy" in strategies)
+        policy = self._policy() if "policy" in strategies else self._baseline_settings()
         vecs = self._encode([q.text for q in qs])
         eps = episodes(graph, qs, vecs)
         table = {}

@@ -273,6 +273,8 @@ def format_run(run: dict) -> str:
             alt = _best_alternative(f)
             if alt is not None:
                 lines.append(f"        beat: {_fit(_alt_text(alt), 80)}  (p={_fmt_p(alt.get('probability'))})")
+            else:
+                lines.append("        beat: (no other option at this step)")
     ranked = run.get("ranked") or []
     if len(ranked) > 1:
         lines.append("")
@@ -388,7 +390,7 @@ def _svg(run: dict) -> str:
             ay = y + node_h + 40 + k * 46
             ax = cx[i] + 40
             label = STOP_TEXT if a.get("fact_id") is None else a.get("text")
-            parts.append(f'<g class="alt" opacity="0.45"><title>{_e(label)} (p={_fmt_p(a.get("probability"))})</title>'
+            parts.append(f'<g class="alt" opacity="0.6"><title>{_e(label)} (p={_fmt_p(a.get("probability"))})</title>'
                          f'<path d="M{sx:.0f},{sy} C{sx:.0f},{ay + 12} {ax - 10},{ay + 12} {ax},{ay + 12}" '
                          f'fill="none" stroke="#8a94a6" stroke-width="1.2" stroke-dasharray="4 3"/>'
                          f'<rect x="{ax}" y="{ay}" width="{gap + node_w - 60}" height="24" rx="4" '

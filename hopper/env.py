@@ -16,7 +16,7 @@ from .store import Store
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
 DENSE_K = 3         # facts offered by dense similarity to the state, to recover a poor link
 LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
-N_CHEAP = 8         # cheap features per candidate (see Candidates.feats)
+N_CHEAP = 9         # cheap features per candidate (see candidates())
 N_STOP = 4          # cheap features of the STOP action
 
 _TOKEN = re.compile(r"[^\s]+")
@@ -248,6 +248,7 @@ class Candidates:
     nexts: np.ndarray   # the entity each fetch moves to, int64 [C]
     feats: np.ndarray   # cheap features, float32 [C, N_CHEAP]
     stop_feats: np.ndarray  # float32 [N_STOP]
+    here: int = -1      # the entity the walker stands on
 
 
 def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hops: int,
@@ -307,6 +308,9 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     rv = np.asarray(graph.relation_vecs[graph.rel[facts]]) if len(facts) else fv
     visited = set(walker.visited) | {e}
     deg = np.array([graph.degree(int(n)) for n in nexts], np.float32)
+    kind = graph.rel[facts].astype(np.int64) * 2 + dirs
+    _, kinv, kcnt = np.unique(kind, return_inverse=True, return_counts=True)
+    kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)
     feats = np.stack([
         fv @ qvec,                                               # text similar to the question
         rv @ qvec,                                               # relation similar to the question
@@ -316,10 +320,11 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
         np.array([n in linked for n in nexts], np.float32),      # goes to an entity the question names
         np.log1p(deg) / 5.0,                                     # how connected the next entity is
         np.full(len(facts), (hop + 1) / max_hops, np.float32),   # how far into the walk
+        -np.log(kind_count),                                     # share of its (relation, direction) kind
     ], axis=1).astype(np.float32) if len(facts) else np.zeros((0, N_CHEAP), np.float32)
     stop_feats = np.array([hop == 0, e in linked, hop / max_hops,
                            np.log1p(graph.degree(e)) / 5.0], np.float32)
-    return Candidates(facts, dirs, nexts, feats, stop_feats)
+    return Candidates(facts, dirs, nexts, feats, stop_feats, e)
 
 
 def pad_candidates(cands: list) -> dict:
@@ -334,4 +339,6 @@ def pad_candidates(cands: list) -> dict:
         n = len(c.facts)
         facts[i, :n], dirs[i, :n], feats[i, :n], mask[i, :n] = c.facts, c.dirs, c.feats, True
     stop = np.stack([c.stop_feats for c in cands]) if cands else np.zeros((0, N_STOP), np.float32)
-    return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask, "stop_feats": stop}
+    here = np.array([c.here for c in cands], np.int64)
+    return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask, "stop_feats": stop,
+            "here": here}

@@ -1,8 +1,11 @@
 """Loading fact tables: read CSV/Parquet/JSON Lines with DuckDB, validate, dedupe, embed, store."""
 from __future__ import annotations
 
+import codecs
+import contextlib
 import csv
 import difflib
+import json
 import re
 import sys
 from dataclasses import dataclass, field
@@ -19,6 +22,9 @@ MAX_NAME = 1_000      # characters in a subject, relation or object
 MAX_TEXT = 20_000     # characters in a fact's text
 FORMATS = {".csv": "csv", ".tsv": "csv", ".parquet": "parquet", ".jsonl": "json", ".ndjson": "json"}
 _SPACE = r"[\s\pZ]+"  # ASCII and Unicode white space, for trimming
+_CSV_READ = ("read_csv(?, header = true, auto_detect = false, columns = ?, delim = ?, skip = ?, "
+             "quote = '\"', escape = '\"', strict_mode = true, null_padding = false, comment = '', "
+             "store_rejects = true, rejects_table = 'rej_{n}', rejects_scan = 'rejscan_{n}')")
 
 
 @dataclass
@@ -39,29 +45,140 @@ class LoadReport:
         return dict(self.__dict__)
 
 
+@dataclass
+class _Staged:
+    """One input file read into the staging table ``raw_{n}(_row, pre, c0, c1, ...)``.
+
+    ``_row`` numbers the records DuckDB read (1, 2, ...), ``pre`` holds a problem the reader
+    already found ('field|reason'), and ``c<i>`` is the file's i-th column (``names[i]``) as text.
+    """
+
+    path: Path
+    kind: str
+    names: list[str]
+    header_line: int = 0          # the CSV header's line in the file; 0 for other kinds
+    delim: str = ","
+
+
 def _first_line(exc: Exception) -> str:
     text = str(exc)
     text = re.sub(r"^[A-Za-z ]*Error: ", "", text.strip())
     return text.splitlines()[0] if text else type(exc).__name__
 
 
-def _reader_error(path: Path, exc: Exception) -> InputError:
-    text = str(exc)
-    line = None
-    m = re.search(r"(?:on Line|in line|line)[: ]+(\d+)", text, re.IGNORECASE)
-    if m:
-        line = int(m.group(1))
-    if "unicode" in text.lower() or "utf-8" in text.lower() or "utf8" in text.lower():
-        return InputError("is not valid UTF-8 text", file=str(path), line=line,
-                          hint="save the file as UTF-8 and load it again")
-    if "malformed json" in text.lower():
-        return InputError("malformed JSON", file=str(path), line=line,
-                          hint="each line must be one JSON object")
-    return InputError(f"cannot be read: {_first_line(exc)}", file=str(path), line=line)
+def _csv_header(path: Path, delim: str) -> tuple[int, list[str]]:
+    """The line number and fields of a CSV file's header: its first non-blank line."""
+    with open(path, "rb") as fh:
+        for n, raw in enumerate(fh, start=1):
+            if n == 1 and raw.startswith(codecs.BOM_UTF8):
+                raw = raw[len(codecs.BOM_UTF8):]
+            if not raw.strip():
+                continue
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError:
+                raise InputError("is not valid UTF-8 text", file=str(path), line=n,
+                                 hint="save the file as UTF-8 and load it again") from None
+            try:
+                row = next(csv.reader([text], delimiter=delim, quotechar='"', strict=True))
+            except (csv.Error, StopIteration) as exc:
+                raise InputError(f"the header cannot be read ({exc})", file=str(path), line=n,
+                                 hint="the first line must name the columns") from None
+            return n, row
+    return 0, []
 
 
-def _stage_file(stage, path: Path, n: int) -> tuple[str, int]:
-    """Read one file into a staging table ``raw_{n}`` with a row number; return (kind, header lines)."""
+def _line_of_offsets(path: Path, offsets) -> dict[int, int]:
+    """Map byte offsets in a file to the 1-based line each falls on."""
+    want = sorted(set(offsets))
+    out, line, pos, i = {}, 1, 0, 0
+    with open(path, "rb") as fh:
+        while i < len(want):
+            chunk = fh.read(1 << 20)
+            if not chunk:
+                break
+            while i < len(want) and want[i] < pos + len(chunk):
+                out[want[i]] = line + chunk.count(b"\n", 0, want[i] - pos)
+                i += 1
+            line += chunk.count(b"\n")
+            pos += len(chunk)
+    for off in want[i:]:
+        out[off] = line
+    return out
+
+
+def _csv_reject_reason(error_type: str, message: str, n_cols: int) -> str:
+    found = re.search(r"Found: (\d+)", message or "")
+    if error_type in ("MISSING COLUMNS", "TOO MANY COLUMNS") and found:
+        return f"has {found.group(1)} fields where the header has {n_cols}"
+    if error_type == "INVALID ENCODING" or "unicode" in (message or "").lower():
+        return "is not valid UTF-8 text"
+    if error_type == "UNQUOTED VALUE":
+        return "has a quote that is not closed, or text after a closing quote"
+    if error_type == "LINE SIZE OVER MAXIMUM":
+        return "is too long for the CSV reader"
+    return (message or error_type).splitlines()[0].rstrip(".")
+
+
+def _stage_csv(stage, path: Path, n: int, delim: str) -> _Staged:
+    header_line, names = _csv_header(path, delim)
+    if not names:
+        raise InputError("is empty", file=str(path), hint="a fact table needs a header and rows")
+    cols = {f"c{i}": "VARCHAR" for i in range(len(names))}
+    stage.execute(f"CREATE TABLE raw_{n} AS SELECT row_number() OVER () AS _row, "
+                  f"NULL::VARCHAR AS pre, * FROM {_CSV_READ.format(n=n)}",
+                  [str(path), cols, delim, header_line - 1])
+    # Rows DuckDB's reader refused (wrong field count, bad quoting, invalid UTF-8): one
+    # problem per record, at the line where the record starts.
+    rejects = stage.execute(
+        f"SELECT line_byte_position - 1, arg_min(column_name, column_idx), "
+        f"arg_min(error_type, column_idx), arg_min(error_message, column_idx) FROM rej_{n} "
+        "GROUP BY ALL ORDER BY 1").fetchall()
+    stage.execute("CREATE TABLE IF NOT EXISTS reader_rejects (file_no INTEGER, line BIGINT, "
+                  "problem VARCHAR)")
+    if rejects:
+        lines = _line_of_offsets(path, [r[0] for r in rejects])
+        for off, col, etype, msg in rejects:
+            col = int(col[1:]) if col and re.fullmatch(r"c\d+", col) else -1
+            fld = names[col].strip() if 0 <= col < len(names) and \
+                etype not in ("MISSING COLUMNS", "TOO MANY COLUMNS") else ""
+            stage.execute("INSERT INTO reader_rejects VALUES (?, ?, ?)",
+                          [n, lines[off], f"{fld}|{_csv_reject_reason(etype, msg, len(names))}"])
+    return _Staged(path, "csv", names, header_line, delim)
+
+
+def _stage_json(stage, path: Path, n: int) -> _Staged:
+    # Each line is read as one JSON value; a line that is not JSON becomes a NULL row in
+    # its place (so rows stay in file order), reported as malformed.
+    stage.execute(f"CREATE TABLE raw_{n}_j AS SELECT row_number() OVER () AS _row, json "
+                  "FROM read_ndjson_objects(?, ignore_errors = true)", [str(path)])
+    keys = [r[0] for r in stage.execute(
+        f"SELECT DISTINCT k FROM (SELECT unnest(json_keys(json)) AS k FROM raw_{n}_j "
+        "WHERE json_type(json) = 'OBJECT') ORDER BY k").fetchall()]
+    keys = [k for k in keys if k]
+    cols = "".join(f", json ->> ? AS c{i}" for i in range(len(keys)))
+    stage.execute(
+        f"CREATE TABLE raw_{n} AS SELECT _row, CASE WHEN json IS NULL THEN '|malformed JSON' "
+        "WHEN json_type(json) <> 'OBJECT' THEN '|is not a JSON object' END AS pre"
+        f"{cols} FROM raw_{n}_j", ["$." + _json_path_key(k) for k in keys])
+    stage.execute(f"DROP TABLE raw_{n}_j")
+    return _Staged(path, "json", keys)
+
+
+def _stage_parquet(stage, path: Path, n: int) -> _Staged:
+    names = [r[0] for r in stage.execute("DESCRIBE SELECT * FROM read_parquet(?)",
+                                         [str(path)]).fetchall()]
+    cols = "".join(f", c{i} VARCHAR" for i in range(len(names)))
+    stage.execute(f"CREATE TABLE raw_{n} (_row BIGINT, pre VARCHAR{cols})")
+    # Columns are matched by position, so no name from the file is written into SQL.
+    stage.execute(f"INSERT INTO raw_{n} SELECT file_row_number + 1, NULL, "
+                  "* EXCLUDE (file_row_number) FROM read_parquet(?, file_row_number = true)",
+                  [str(path)])
+    return _Staged(path, "parquet", names)
+
+
+def _stage_file(stage, path: Path, n: int) -> _Staged:
+    """Read one file into a staging table ``raw_{n}``."""
     if not path.exists():
         raise InputError("no such file", file=str(path))
     if path.is_dir():
@@ -69,101 +186,192 @@ def _stage_file(stage, path: Path, n: int) -> tuple[str, int]:
     kind = FORMATS.get(path.suffix.lower())
     if kind is None:
         raise InputError(f"unknown file type '{path.suffix or '(none)'}'", file=str(path),
-                         hint="use .csv, .parquet, .jsonl or .ndjson")
+                         hint="use .csv, .tsv, .parquet, .jsonl or .ndjson")
     try:
         with open(path, "rb") as fh:
-            head = fh.read(1)
+            head = fh.read(1 << 16)
     except OSError as exc:
         raise InputError(f"cannot be read: {exc.strerror}", file=str(path)) from None
-    if not head:
+    blank = not head if kind == "parquet" else (not head.strip() and len(head) < 1 << 16)
+    if blank:
         raise InputError("is empty", file=str(path), hint="a fact table needs a header and rows")
-    table = f"raw_{n}"
     try:
         if kind == "csv":
-            delim = "\t" if path.suffix.lower() == ".tsv" else ","
-            stage.execute(f"CREATE TABLE {table} AS SELECT row_number() OVER () AS _row, * FROM "
-                          "read_csv(?, header = true, all_varchar = true, delim = ?, "
-                          "quote = '\"', escape = '\"', strict_mode = true, "
-                          "null_padding = false)", [str(path), delim])
-            return kind, 1
-        if kind == "parquet":
-            stage.execute(f"CREATE TABLE {table} AS SELECT row_number() OVER () AS _row, * "
-                          "FROM read_parquet(?)", [str(path)])
-            return kind, 0
-        # JSON Lines: read each line as a JSON value, then pull fields out as text.
-        stage.execute(f"CREATE TABLE {table}_j AS SELECT row_number() OVER () AS _row, json "
-                      "FROM read_ndjson_objects(?)", [str(path)])
-        bad = first(stage.execute(f"SELECT _row FROM {table}_j WHERE json_type(json) <> 'OBJECT' "
-                            "ORDER BY _row LIMIT 1"))
-        if bad:
-            raise InputError("is not a JSON object", file=str(path), line=bad[0],
-                             hint="each line must be one JSON object")
-        keys = [r[0] for r in stage.execute(
-            f"SELECT DISTINCT unnest(json_keys(json)) FROM {table}_j").fetchall()]
-        cols = ", ".join(f"json ->> {_sql_str('$.' + _json_path_key(k))} AS {_ident(k)}"
-                         for k in keys if k)
-        stage.execute(f"CREATE TABLE {table} AS SELECT _row{', ' + cols if cols else ''} "
-                      f"FROM {table}_j")
-        return kind, 0
+            return _stage_csv(stage, path, n, "\t" if path.suffix.lower() == ".tsv" else ",")
+        if kind == "json":
+            return _stage_json(stage, path, n)
+        return _stage_parquet(stage, path, n)
     except InputError:
         raise
-    except duckdb.Error as exc:
-        raise _reader_error(path, exc) from None
-
-
-def _sql_str(s: str) -> str:
-    return "'" + s.replace("'", "''") + "'"
-
-
-def _ident(s: str) -> str:
-    return '"' + s.replace('"', '""') + '"'
+    except (duckdb.Error, OSError) as exc:
+        raise InputError(f"cannot be read as {kind.upper() if kind != 'json' else 'JSON Lines'}: "
+                         f"{_first_line(exc)}", file=str(path)) from None
 
 
 def _json_path_key(k: str) -> str:
     return '"' + k.replace("\\", "\\\\").replace('"', '\\"') + '"'
 
 
-def _columns(stage, table: str, path: Path) -> dict[str, str]:
-    """Map our column names to the file's, matching case and surrounding spaces loosely."""
-    names = [r[0] for r in stage.execute(f"DESCRIBE {table}").fetchall() if r[0] != "_row"]
-    found = {n.strip().lower(): n for n in names}
+def _columns(st: _Staged) -> dict[str, str]:
+    """Map our column names to the staging table's, matching case and surrounding spaces loosely."""
+    found: dict[str, int] = {}
+    for i, name in enumerate(st.names):
+        key = name.strip().lower()
+        if key in REQUIRED + OPTIONAL and key in found:
+            raise InputError("the column appears twice", file=str(st.path),
+                             line=st.header_line or None, field=key)
+        found.setdefault(key, i)
+    line = st.header_line or None
     missing = [c for c in REQUIRED if c not in found]
     if missing:
         col = missing[0]
-        close = difflib.get_close_matches(col, list(found), n=1, cutoff=0.6)
-        hint = (f"found a column '{found[close[0]]}': did you mean '{col}'?" if close else
-                f"the header has: {', '.join(names) or 'nothing'}; required: subject, relation, object")
-        raise InputError("missing required column", file=str(path), line=1, field=col, hint=hint)
-    return {c: found[c] for c in REQUIRED + OPTIONAL if c in found}
+        spare = [k for k in found if k not in REQUIRED + OPTIONAL]
+        close = difflib.get_close_matches(col, spare, n=1, cutoff=0.6)
+        if close:
+            hint = f"found a column '{st.names[found[close[0]]].strip()}': did you mean '{col}'?"
+        elif len(st.names) == 1 and any(d in st.names[0] for d in ",;\t|"):
+            hint = (f"the header has one column '{st.names[0].strip()}': hopper reads .csv files "
+                    "separated by ',' and .tsv files separated by tabs")
+        else:
+            shown = ", ".join(n.strip() for n in st.names[:10]) or "nothing"
+            hint = f"the columns are: {shown}; required: subject, relation, object"
+        where = "column" if st.kind != "json" else "key"
+        raise InputError(f"missing required {where}", file=str(st.path), line=line,
+                         field=col, hint=hint)
+    return {c: f"c{found[c]}" for c in REQUIRED + OPTIONAL if c in found}
 
 
 def _clean(expr: str) -> str:
-    return f"regexp_replace(CAST({expr} AS VARCHAR), '^{_SPACE}|{_SPACE}$', '', 'g')"
+    """Text of a cell: Unicode NFC (so one name has one spelling), outer white space trimmed."""
+    return f"nfc_normalize(regexp_replace(CAST({expr} AS VARCHAR), '^{_SPACE}|{_SPACE}$', '', 'g'))"
+
+
+@contextlib.contextmanager
+def _csv_field_limit():
+    old = csv.field_size_limit()
+    csv.field_size_limit(2**31 - 1)
+    try:
+        yield
+    finally:
+        csv.field_size_limit(old)
+
+
+def _record_lines(st: _Staged, reject_lines: set[int]) -> list[int] | None:
+    """The line where each record DuckDB read begins, in order; None if it cannot be told.
+
+    DuckDB numbers records, not lines: a quoted field may span lines, and blank lines are
+    skipped.  Python's csv module (the same quoting rules) walks the file to find each
+    record's first line; records DuckDB refused are left out, as they are not rows.
+    """
+    out = []
+    try:
+        if st.kind == "json":
+            with open(st.path, "rb") as fh:
+                out = [n for n, raw in enumerate(fh, start=1) if raw.strip()]
+            return out
+        with _csv_field_limit(), open(st.path, newline="", encoding="utf-8",
+                                      errors="replace") as fh:
+            reader = csv.reader(fh, delimiter=st.delim, quotechar='"', strict=False)
+            prev = 0
+            for row in reader:
+                start, prev = prev + 1, reader.line_num
+                if start > st.header_line and row and start not in reject_lines:
+                    out.append(start)
+    except (OSError, csv.Error):
+        return None
+    return out
+
+
+def _json_problem(raw: bytes) -> str:
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return "|is not valid UTF-8 text"
+    try:
+        json.loads(text)
+    except ValueError as exc:
+        msg = getattr(exc, "msg", str(exc))
+        col = getattr(exc, "colno", None)
+        return f"|malformed JSON ({msg}{f' at column {col}' if col else ''})"
+    return "|malformed JSON"
+
+
+def _fix_lines(stage, staged: list[_Staged]) -> None:
+    """Give rows with a problem the real line of the file they came from."""
+    import pyarrow as pa
+
+    todo = [r[0] for r in stage.execute(
+        "SELECT DISTINCT file_no FROM checked WHERE problem IS NOT NULL AND _row IS NOT NULL "
+        "ORDER BY 1").fetchall()]
+    for n in todo:
+        st = staged[n]
+        if st.kind == "parquet":
+            continue  # a row number is all a Parquet file has
+        rejects = {r[0] for r in stage.execute(
+            "SELECT line FROM reader_rejects WHERE file_no = ?", [n]).fetchall()}
+        lines = _record_lines(st, rejects)
+        count = first(stage.execute(f"SELECT count(*) FROM raw_{n}"))[0]
+        if lines is None or len(lines) != count:
+            continue  # keep the record number plus the header
+        stage.register("line_map", pa.table({"_row": pa.array(range(1, count + 1), pa.int64()),
+                                             "line": pa.array(lines, pa.int64())}))
+        stage.execute("UPDATE checked SET line = m.line FROM line_map m "
+                      "WHERE checked.file_no = ? AND checked._row = m._row", [n])
+        stage.unregister("line_map")
+        if st.kind == "json":  # say what is wrong with each malformed line
+            bad = {r[0]: r[1] for r in stage.execute(
+                "SELECT line, _row FROM checked WHERE file_no = ? AND problem = '|malformed JSON'",
+                [n]).fetchall()}
+            if bad:
+                with open(st.path, "rb") as fh:
+                    for k, raw in enumerate(fh, start=1):
+                        if k in bad:
+                            stage.execute("UPDATE checked SET problem = ? WHERE file_no = ? "
+                                          "AND _row = ?", [_json_problem(raw.rstrip(b"\r\n")), n,
+                                                           bad[k]])
 
 
 def stage_files(paths: list[Path]):
-    """Read and validate every file into an in-memory DuckDB; return (stage, report)."""
+    """Read and validate every file into an in-memory DuckDB; return the staging connection.
+
+    Tables: ``rows`` (every record read), ``checked`` (rows with their first problem, as
+    'field|reason', or NULL) and ``valid`` (good rows, one per distinct fact).
+    """
     stage = duckdb.connect()
-    parts = []
+    stage.execute("CREATE TABLE reader_rejects (file_no INTEGER, line BIGINT, problem VARCHAR)")
+    stage.execute("CREATE TABLE files (file_no INTEGER, file VARCHAR)")
+    staged, parts = [], []
     for n, path in enumerate(paths):
-        kind, header = _stage_file(stage, path, n)
-        cols = _columns(stage, f"raw_{n}", path)
-        get = {c: (_clean(_ident(cols[c])) if c in cols else "NULL") for c in REQUIRED + OPTIONAL}
+        st = _stage_file(stage, path, n)
+        staged.append(st)
+        stage.execute("INSERT INTO files VALUES (?, ?)", [n, str(path)])
+        cols = _columns(st)
+        count = first(stage.execute(f"SELECT (SELECT count(*) FROM raw_{n}) + (SELECT count(*) "
+                                    "FROM reader_rejects WHERE file_no = ?)", [n]))[0]
+        if count == 0:
+            raise InputError("has a header but no rows" if st.kind == "csv" else "has no rows",
+                             file=str(path))
+        get = {c: (_clean(cols[c]) if c in cols else "NULL") for c in REQUIRED + OPTIONAL}
         parts.append(f"""
-            SELECT {n} AS file_no, {_sql_str(str(path))} AS file, _row + {header} AS line,
+            SELECT {n} AS file_no, _row, _row + {st.header_line} AS line, pre,
                    {get['subject']} AS subject, {get['relation']} AS relation,
                    {get['object']} AS object, {get['text']} AS text,
                    {get['source']} AS source, {get['id']} AS source_id
             FROM raw_{n}""")
-    stage.execute("CREATE TABLE rows AS " + " UNION ALL ".join(parts))
-    checks = []
+    parts.append("SELECT file_no, NULL, line, problem, NULL, NULL, NULL, NULL, NULL, NULL "
+                 "FROM reader_rejects")
+    stage.execute("CREATE TABLE rows_ AS " + " UNION ALL ".join(parts))
+    stage.execute("CREATE TABLE rows AS SELECT f.file, r.* FROM rows_ r JOIN files f USING (file_no)")
+    stage.execute("DROP TABLE rows_")
+    checks = ["WHEN pre IS NOT NULL THEN pre"]
     for c in REQUIRED:
-        checks.append(f"WHEN {c} IS NULL OR {c} = '' THEN '{c}|empty value'")
+        checks.append(f"WHEN {c} IS NULL OR {c} = '' THEN '{c}|blank or missing value'")
         checks.append(f"WHEN length({c}) > {MAX_NAME} THEN '{c}|longer than {MAX_NAME} characters'")
     checks.append(f"WHEN length(text) > {MAX_TEXT} THEN 'text|longer than {MAX_TEXT} characters'")
     stage.execute(f"""
         CREATE TABLE checked AS
         SELECT *, CASE {' '.join(checks)} ELSE NULL END AS problem FROM rows""")
+    _fix_lines(stage, staged)
     stage.execute("""
         CREATE TABLE valid AS
         SELECT file_no, line, subject, relation, object,
@@ -171,7 +379,7 @@ def stage_files(paths: list[Path]):
                nullif(source, '') AS source, nullif(source_id, '') AS source_id,
                sha256(subject || chr(31) || relation || chr(31) || object) AS content_hash
         FROM checked WHERE problem IS NULL
-        QUALIFY row_number() OVER (PARTITION BY content_hash ORDER BY file_no, line) = 1""")
+        QUALIFY row_number() OVER (PARTITION BY content_hash ORDER BY file_no, _row) = 1""")
     return stage
 
 
@@ -239,8 +447,6 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     stage = stage_files(paths)
     report = LoadReport(files=[str(p) for p in paths])
     report.rows_read = first(stage.execute("SELECT count(*) FROM rows"))[0]
-    if report.rows_read == 0:
-        raise InputError("has a header but no rows", file=str(paths[0]))
     bad = stage.execute("SELECT file, line, problem FROM checked WHERE problem IS NOT NULL "
                         "ORDER BY file_no, line").fetchall()
     report.rejected = len(bad)

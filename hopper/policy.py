@@ -5,10 +5,10 @@ runs it on torch tensors (for gradients) and ``ask`` runs the very same function
 arrays (no torch import on the hot path).  ``tests/test_policy.py`` checks both give the same
 probabilities.
 
-    state      z_t = tanh(q W_q + h_t W_h + b_hop[t])
+    state      z_t = tanh(q W_q + h_t W_h + e_t W_e + b_hop[t])           (e_t: where it stands)
     candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
                                                                            learned relation vector)
-    score      s_a = z_t . c_a + f_a . w_f                                 (f_a: cheap features)
+    score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
     STOP       s_0 = z_t . w_stop + g_t . w_g + b_stop
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
@@ -22,7 +22,7 @@ from .env import N_CHEAP, N_STOP
 NEG = -1e9  # the score of a padded (absent) candidate
 
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
-    "W_q": ("D", "H"), "W_h": ("H", "H"), "b_hop": ("T", "H"),
+    "W_q": ("D", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
     "w_f": (N_CHEAP,), "w_stop": ("H",), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
@@ -74,7 +74,12 @@ class TorchOps:
     def asarray(self, x, like=None):
         if isinstance(x, self.torch.Tensor):
             return x
-        return self.torch.as_tensor(np.asarray(x))
+        x = np.asarray(x)
+        if not x.flags.writeable:
+            x = x.copy()
+        if x.dtype.kind == "f":  # floats follow torch's default dtype (float32 unless a test asks)
+            return self.torch.as_tensor(x, dtype=self.torch.get_default_dtype())
+        return self.torch.as_tensor(x)
 
 
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int) -> dict:
@@ -89,7 +94,11 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
             params[name] = (rng.standard_normal(shp) / np.sqrt(fan_in)).astype(np.float32)
-    params["w_f"][0] = 1.0  # start near similarity-following: similar text scores higher
+    # Start from a sensible prior rather than noise, so early rollouts reach answers often:
+    params["w_f"][1] = 3.0            # follow relations whose name resembles the question
+    params["w_f"][N_CHEAP - 1] = 1.0  # each (relation, direction) kind gets equal mass, not
+    #                                   each fact: a node with 30 parts does not drown the rest
+    params["b_stop"][0] = 1.5         # STOP keeps a fair share (~1/3) at every hop
     return params
 
 
@@ -114,14 +123,15 @@ def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot)
     return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"])
 
 
-def scores(P: dict, ops, q, h, hop, cand, feats, mask, stop_feats):
+def scores(P: dict, ops, q, h, here, hop, cand, feats, mask, stop_feats):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
-    q [B, D], h [B, H], hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F],
-    mask [B, C] bool (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
+    q [B, D], h [B, H], here [B, D] (the vector of the entity each walker stands on), hop [B]
+    int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
+    (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
     """
-    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + P["b_hop"][ops.asarray(hop)])
-    s = (cand * z[:, None, :]).sum(-1) + feats @ P["w_f"]
+    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["b_hop"][ops.asarray(hop)])
+    s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s = ops.where(ops.asarray(mask), s, NEG)
     s_stop = (z * P["w_stop"]).sum(-1, keepdims=True) + stop_feats @ P["w_g"][:, None] + P["b_stop"]
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
@@ -192,6 +202,11 @@ class Policy:
             if dtype != "float32-le":
                 raise ValueError(f"policy tensor {name}: unknown dtype {dtype}")
             params[name] = np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+        missing = set(PARAM_SHAPES) - set(params)
+        if missing:
+            from .errors import InputError
+            raise InputError(f"policy v{row[0]} was made by another version of hopper (it lacks "
+                             f"{', '.join(sorted(missing))})", hint="train a new policy")
         return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
 
 
@@ -213,6 +228,7 @@ def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict):
     slot = relation_slot(relmap[rel] if len(relmap) else np.full_like(rel, -1), dirs,
                          (P["E"].shape[0] - 1) // 2)
     cand = candidate_repr(P, ops, fv, inv.reshape(-1), rv, rel, dirs, slot).reshape(B, C, -1)
-    logp = scores(P, ops, q, h, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
+    here = ops.asarray(np.asarray(graph.entity_vecs[batch["here"]], np.float32))
+    logp = scores(P, ops, q, h, here, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]))
     return logp, cand

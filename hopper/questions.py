@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -30,7 +31,7 @@ def check_text(text: str, where: str = "question", file=None, line=None) -> str:
     """Validate a question's words: not blank, not absurdly long."""
     if not isinstance(text, str):
         raise InputError("must be a string", file=file, line=line, field=where)
-    text = " ".join(text.split())
+    text = unicodedata.normalize("NFC", " ".join(text.split()))  # as the loader stores names
     if not text:
         raise InputError("is empty", file=file, line=line, field=where,
                          hint="ask a question in words, or give --subject and --relation")
@@ -70,7 +71,7 @@ def make_question(obj: dict, file=None, line=None, need_answer: bool = True) -> 
         if not isinstance(ans, list) or not ans or not all(isinstance(a, str) and a.strip() for a in ans):
             raise InputError("must be a non-empty string or a list of non-empty strings",
                              file=file, line=line, field="answer")
-        answers = [" ".join(a.split()) for a in ans]
+        answers = [unicodedata.normalize("NFC", " ".join(a.split())) for a in ans]
     hops = obj.get("hops")
     hops = hops if isinstance(hops, int) and not isinstance(hops, bool) else None
     return Question(text, answers, subject, relation, hops, line)
@@ -90,7 +91,7 @@ def read_questions(path, need_answer: bool = True) -> list[Question]:
     out = []
     for n, raw in enumerate(data.split(b"\n"), start=1):
         try:
-            line = raw.decode("utf-8")
+            line = raw.decode("utf-8-sig" if n == 1 else "utf-8")  # a byte-order mark is allowed
         except UnicodeDecodeError:
             raise InputError("is not valid UTF-8", file=str(path), line=n,
                              hint="save the file as UTF-8") from None

@@ -97,7 +97,7 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     walkers = [Walker(ep.starts[k % len(ep.starts)], (), (ep.starts[k % len(ep.starts)],))
                for ep in eps for k in range(K)]
     owner = [ep for ep in eps for _ in range(K)]
-    q = torch.as_tensor(np.stack([ep.qvec for ep in owner]))
+    q = ops.asarray(np.stack([ep.qvec for ep in owner]))
     H = P["W_h"].shape[0]
     h = torch.zeros(B, H)
     alive = np.ones(B, bool)
