@@ -16,7 +16,7 @@ class _Parser(argparse.ArgumentParser):
     """argparse, but a usage error is one line on stderr and exit status 2."""
 
     def error(self, message):
-        raise InputError(f"{self.prog}: {message} (see '{self.prog} --help')")
+        raise InputError(f"{message} (see '{self.prog} --help')")
 
 
 def _positive(name, lo=1, hi=None):

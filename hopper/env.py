@@ -14,7 +14,7 @@ import numpy as np
 from .store import Store
 
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
-DENSE_K = 3         # facts offered by dense similarity to the state, to recover a poor link
+DENSE_K = 3         # facts offered at the first hop by dense similarity, to recover a poor link
 LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
 N_CHEAP = 9         # cheap features per candidate (see candidates())
 N_STOP = 4          # cheap features of the STOP action
@@ -286,7 +286,7 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     keep = [i for i, f in enumerate(facts) if int(f) not in fetched and int(f) not in hidden]
     facts, dirs = facts[keep], dirs[keep]
     is_dense = np.zeros(len(facts), np.float32)
-    if dense and graph.n_facts:
+    if dense and hop == 0 and graph.n_facts:  # at the start only: recovers a poor entity link
         dkey = ("dense", walker.fetched)
         if prerank_cache is not None and dkey in prerank_cache:
             extra = prerank_cache[dkey]

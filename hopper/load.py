@@ -21,7 +21,9 @@ OPTIONAL = ("text", "source", "id")
 MAX_NAME = 1_000      # characters in a subject, relation or object
 MAX_TEXT = 20_000     # characters in a fact's text
 FORMATS = {".csv": "csv", ".tsv": "csv", ".parquet": "parquet", ".jsonl": "json", ".ndjson": "json"}
-_SPACE = r"[\s\pZ]+"  # ASCII and Unicode white space, for trimming
+# White space as Python's str.split() sees it (ASCII, Unicode separators, \v, \x1c-\x1f, NEL),
+# so names here and in questions (hopper.questions.check_text) are cleaned the same way.
+_SPACE = r"[\s\pZ\x0b\x1c-\x1f\x85]+"
 _CSV_READ = ("read_csv(?, header = true, auto_detect = false, columns = ?, delim = ?, skip = ?, "
              "quote = '\"', escape = '\"', strict_mode = true, null_padding = false, comment = '', "
              "store_rejects = true, rejects_table = 'rej_{n}', rejects_scan = 'rejscan_{n}')")
@@ -241,9 +243,16 @@ def _columns(st: _Staged) -> dict[str, str]:
     return {c: f"c{found[c]}" for c in REQUIRED + OPTIONAL if c in found}
 
 
-def _clean(expr: str) -> str:
-    """Text of a cell: Unicode NFC (so one name has one spelling), outer white space trimmed."""
-    return f"nfc_normalize(regexp_replace(CAST({expr} AS VARCHAR), '^{_SPACE}|{_SPACE}$', '', 'g'))"
+def _clean(expr: str, name: bool = False) -> str:
+    """Text of a cell in Unicode NFC (so one name has one spelling), outer white space trimmed.
+
+    In a name (subject, relation, object) each run of white space also becomes one space, as
+    in questions and answers, so a name typed in a question matches the stored one.
+    """
+    text = f"regexp_replace(CAST({expr} AS VARCHAR), '^{_SPACE}|{_SPACE}$', '', 'g')"
+    if name:
+        text = f"regexp_replace({text}, '{_SPACE}', ' ', 'g')"
+    return f"nfc_normalize({text})"
 
 
 @contextlib.contextmanager
@@ -296,6 +305,25 @@ def _json_problem(raw: bytes) -> str:
     return "|malformed JSON"
 
 
+def _raise_first_malformed(stage, st: _Staged, n: int) -> None:
+    """Raise the first line of a JSON Lines file that could not be read as an object."""
+    row = first(stage.execute(f"SELECT _row, pre FROM raw_{n} WHERE pre IS NOT NULL "
+                              "ORDER BY _row LIMIT 1"))
+    if row is None:
+        return
+    lines = _record_lines(st, set()) or []
+    line = lines[row[0] - 1] if row[0] <= len(lines) else None
+    problem = row[1]
+    if problem == "|malformed JSON" and line is not None:
+        with open(st.path, "rb") as fh:
+            for k, raw in enumerate(fh, start=1):
+                if k == line:
+                    problem = _json_problem(raw.rstrip(b"\r\n"))
+                    break
+    raise InputError(problem.split("|", 1)[1], file=str(st.path), line=line,
+                     hint="each line must be one JSON object")
+
+
 def _fix_lines(stage, staged: list[_Staged]) -> None:
     """Give rows with a problem the real line of the file they came from."""
     import pyarrow as pa
@@ -345,13 +373,20 @@ def stage_files(paths: list[Path]):
         st = _stage_file(stage, path, n)
         staged.append(st)
         stage.execute("INSERT INTO files VALUES (?, ?)", [n, str(path)])
-        cols = _columns(st)
+        try:
+            cols = _columns(st)
+        except InputError:
+            # A key no line has may only be on the lines that could not be read: say so.
+            if st.kind == "json":
+                _raise_first_malformed(stage, st, n)
+            raise
         count = first(stage.execute(f"SELECT (SELECT count(*) FROM raw_{n}) + (SELECT count(*) "
                                     "FROM reader_rejects WHERE file_no = ?)", [n]))[0]
         if count == 0:
             raise InputError("has a header but no rows" if st.kind == "csv" else "has no rows",
                              file=str(path))
-        get = {c: (_clean(cols[c]) if c in cols else "NULL") for c in REQUIRED + OPTIONAL}
+        get = {c: (_clean(cols[c], name=c in REQUIRED) if c in cols else "NULL")
+               for c in REQUIRED + OPTIONAL}
         parts.append(f"""
             SELECT {n} AS file_no, _row, _row + {st.header_line} AS line, pre,
                    {get['subject']} AS subject, {get['relation']} AS relation,
@@ -388,7 +423,8 @@ def _write_rejected(stage, paths: list[Path]) -> list[str]:
     written = []
     for n, path in enumerate(paths):
         rows = stage.execute(
-            "SELECT line, split_part(problem, '|', 1), split_part(problem, '|', 2), subject, "
+            "SELECT line, split_part(problem, '|', 1), substr(problem, strpos(problem, '|') + 1), "
+            "subject, "
             "relation, object, text, source, source_id FROM checked "
             "WHERE file_no = ? AND problem IS NOT NULL ORDER BY line", [n]).fetchall()
         if not rows:

@@ -98,6 +98,8 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
     params["w_f"][1] = 3.0            # follow relations whose name resembles the question
     params["w_f"][N_CHEAP - 1] = 1.0  # each (relation, direction) kind gets equal mass, not
     #                                   each fact: a node with 30 parts does not drown the rest
+    params["w_f"][3] = -2.0           # prefer facts that touch where the walk stands over
+    #                                   facts found by similarity alone
     params["b_stop"][0] = 1.5         # STOP keeps a fair share (~1/3) at every hop
     return params
 
