@@ -6,6 +6,7 @@ import os
 import re
 import shutil
 import tempfile
+import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -25,12 +26,12 @@ _TRIM = "\"'`.,;:!?()[]{}<>«»“”‘’"
 
 def name_key(text: str) -> str:
     """How entity names are matched: case-folded, inner white space collapsed."""
-    return " ".join(text.casefold().split())
+    return " ".join(unicodedata.normalize("NFC", text).casefold().split())
 
 
 def _tokens(text: str) -> list[str]:
     out = []
-    for tok in _TOKEN.findall(text.casefold()):
+    for tok in _TOKEN.findall(unicodedata.normalize("NFC", text).casefold()):
         tok = tok.strip(_TRIM)
         for suffix in ("'s", "’s"):
             if tok.endswith(suffix) and len(tok) > len(suffix):
