@@ -548,6 +548,22 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     embed_missing()
 
     # Phase B: one short write transaction; recheck what is new in case another load landed.
+    created = not store.exists()
+    try:
+        _write(store, stage, report, identity, new_items, embed_missing, known_vectors)
+    except BaseException:
+        if created:  # the store did not exist before this command: leave no empty file behind
+            for p in (store.path, Path(str(store.path) + ".wal")):
+                try:
+                    p.unlink()
+                except OSError:
+                    pass
+        raise
+    return report
+
+
+def _write(store, stage, report, identity, new_items, embed_missing, known_vectors):
+    """Phase B of a load: one write transaction with everything new."""
     import numpy as np
 
     with store.transaction() as con:
@@ -616,4 +632,4 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
         if fact_rows:
             version = int(Store.get_meta(con, "facts_version", "0")) + 1
             Store.set_meta(con, "facts_version", str(version))
-    return report
+
