@@ -280,8 +280,10 @@ class Hopper:
 
         starts = self._starts(graph, q, qvec)
         if strategy == "policy":
+            qrel = graph.relation_names.index(q.relation) if q.is_completion and \
+                q.relation in graph.relation_names else -1
             out = beam_search(graph, policy, qvec, starts, beam=int(policy.settings.get("beam", 16)),
-                              hidden=hidden)
+                              hidden=hidden, qrel=qrel)
             if not out.abstained and out.confidence < policy.threshold:
                 out.abstained = True
                 out.reason = (f"confidence {out.confidence:.2f} is below the threshold "

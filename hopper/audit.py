@@ -294,7 +294,7 @@ def format_list(runs: list[dict]) -> str:
         when = (r.get("created_at") or "").replace("T", " ").rstrip("Z")
         rows.append([r["run_id"], when, _fit(ans, 28), _fmt_p(r.get("confidence")),
                      str(r.get("fetches", "")), str(r.get("strategy") or ""), _fit(_clean(r["question"]), 60)])
-    lines = _table(["run", "when (UTC)", "answer", "conf", "hops", "strategy", "question"], rows,
+    lines = _table(["run", "when (UTC)", "answer", "conf", "fetches", "strategy", "question"], rows,
                    right={3, 4})
     return "\n".join(lines)
 

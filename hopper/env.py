@@ -17,8 +17,8 @@ from .store import Store
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
 DENSE_K = 3         # facts offered at the first hop by dense similarity, to recover a poor link
 LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
-N_CHEAP = 9         # cheap features per candidate (see candidates())
-N_STOP = 4          # cheap features of the STOP action
+N_CHEAP = 10        # cheap features per candidate (see candidates())
+N_STOP = 6          # cheap features of the STOP action
 
 _TOKEN = re.compile(r"[^\s]+")
 _TRIM = "\"'`.,;:!?()[]{}<>«»“”‘’"
@@ -231,6 +231,11 @@ class Graph:
         return np.array([t for t in top if int(t) not in ex][:k], np.int64)
 
 
+def _cos(a: np.ndarray, b: np.ndarray) -> float:
+    na = float(np.linalg.norm(a))
+    return float(a @ b) / na if na > 1e-9 else 0.0  # b is a unit vector
+
+
 @dataclass
 class Walker:
     """One walk's position: where it stands and what it has fetched."""
@@ -254,7 +259,7 @@ class Candidates:
 
 def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hops: int,
                linked: frozenset, hidden: frozenset = frozenset(), dense: bool = True,
-               prerank_cache: dict | None = None) -> Candidates:
+               prerank_cache: dict | None = None, cap: int = ADJ_CAP) -> Candidates:
     """The facts offered at this hop: touching facts (pre-ranked, capped) and a few dense ones.
 
     The pre-ranking keeps the best fact of every (relation, direction) kind first, so the
@@ -273,13 +278,13 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
         if len(facts) > 0:
             sims = np.asarray(graph.fact_vecs[facts]) @ qvec
             order = np.argsort(-sims, kind="stable")
-            if len(facts) > ADJ_CAP:
+            if len(facts) > cap:
                 kind = graph.rel[facts[order]].astype(np.int64) * 2 + dirs[order]
                 _, first = np.unique(kind, return_index=True)
-                firsts = order[np.sort(first)][:ADJ_CAP]
+                firsts = order[np.sort(first)][:cap]
                 rest = np.setdiff1d(order, firsts, assume_unique=True)
                 rest = rest[np.argsort(-sims[rest], kind="stable")]
-                order = np.concatenate([firsts, rest])[:ADJ_CAP]
+                order = np.concatenate([firsts, rest])[:cap]
             facts, dirs = facts[order], dirs[order]
         if prerank_cache is not None:
             prerank_cache[key] = (facts, dirs)
@@ -295,7 +300,7 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
             query = qvec + (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0)
                             if walker.fetched else 0.0)
             query = query / max(float(np.linalg.norm(query)), 1e-9)
-            extra = graph.dense_search(query, DENSE_K + ADJ_CAP, exclude=fetched | hidden)
+            extra = graph.dense_search(query, DENSE_K + cap, exclude=fetched | hidden)
             if prerank_cache is not None:
                 prerank_cache[dkey] = extra
         offered = set(map(int, facts))
@@ -312,6 +317,15 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     kind = graph.rel[facts].astype(np.int64) * 2 + dirs
     _, kinv, kcnt = np.unique(kind, return_inverse=True, return_counts=True)
     kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)
+    # How well the fetched path covers the question, and how much each candidate would add:
+    # a path that already says what the question asks is a reason to stop.
+    path = (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0) if walker.fetched
+            else np.zeros_like(qvec))
+    cover = _cos(path, qvec)
+    before = (_cos(path - np.asarray(graph.fact_vecs[walker.fetched[-1]]), qvec)
+              if walker.fetched else 0.0)
+    with_c = path[None, :] + fv
+    gain = (with_c @ qvec) / np.maximum(np.linalg.norm(with_c, axis=1), 1e-9) - cover
     feats = np.stack([
         fv @ qvec,                                               # text similar to the question
         rv @ qvec,                                               # relation similar to the question
@@ -322,9 +336,10 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
         np.log1p(deg) / 5.0,                                     # how connected the next entity is
         np.full(len(facts), (hop + 1) / max_hops, np.float32),   # how far into the walk
         -np.log(kind_count),                                     # share of its (relation, direction) kind
+        gain,                                                    # what it adds to the path's cover
     ], axis=1).astype(np.float32) if len(facts) else np.zeros((0, N_CHEAP), np.float32)
     stop_feats = np.array([hop == 0, e in linked, hop / max_hops,
-                           np.log1p(graph.degree(e)) / 5.0], np.float32)
+                           np.log1p(graph.degree(e)) / 5.0, cover, cover - before], np.float32)
     return Candidates(facts, dirs, nexts, feats, stop_feats, e)
 
 

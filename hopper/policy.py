@@ -5,7 +5,9 @@ runs it on torch tensors (for gradients) and ``ask`` runs the very same function
 arrays (no torch import on the hot path).  ``tests/test_policy.py`` checks both give the same
 probabilities.
 
-    state      z_t = tanh(q W_q + h_t W_h + e_t W_e + b_hop[t])           (e_t: where it stands)
+    state      z_t = tanh(q W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t])  (e_t: where it stands;
+                                                                           r_q: the relation asked,
+                                                                           for completion questions)
     candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
                                                                            learned relation vector)
     score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
@@ -22,11 +24,14 @@ from .env import N_CHEAP, N_STOP
 NEG = -1e9  # the score of a padded (absent) candidate
 
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
-    "W_q": ("D", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "b_hop": ("T", "H"),
+    "W_q": ("D", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
     "w_f": (N_CHEAP,), "w_stop": ("H",), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
 }
+
+
+TEXT_INPUTS = ("W_q", "W_v", "W_u", "W_e")  # the weights that read sentence vectors
 
 
 class NumpyOps:
@@ -85,21 +90,28 @@ class TorchOps:
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int) -> dict:
     """Small random weights (scaled by fan-in), as float32 numpy arrays."""
     rng = np.random.default_rng(seed)
-    sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1}
+    sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
+             "R1": n_relations + 1}
     params = {}
     for name, shape in PARAM_SHAPES.items():
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
-        if name.startswith("b_") or name in ("w_g",):
+        if name.startswith("b_") or name in ("w_g", "Q"):
             params[name] = np.zeros(shp, np.float32)
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
-            params[name] = (rng.standard_normal(shp) / np.sqrt(fan_in)).astype(np.float32)
-    # Start from a sensible prior rather than noise, so early rollouts reach answers often:
-    params["w_f"][1] = 3.0            # follow relations whose name resembles the question
-    params["w_f"][N_CHEAP - 1] = 1.0  # each (relation, direction) kind gets equal mass, not
-    #                                   each fact: a node with 30 parts does not drown the rest
-    params["w_f"][3] = -2.0           # prefer facts that touch where the walk stands over
-    #                                   facts found by similarity alone
+            # Text vectors are unit length (components ~ 1/sqrt(D)), so weights reading them
+            # start at unit scale; the others are scaled by fan-in as usual.
+            scale = 1.0 if name in TEXT_INPUTS else 1.0 / np.sqrt(fan_in)
+            params[name] = (rng.standard_normal(shp) * scale).astype(np.float32)
+    # Start from a sensible prior rather than noise, so early rollouts reach answers often
+    # (feature order as in env.candidates):
+    params["w_f"][:] = 0.0
+    params["w_f"][1] = 3.0   # follow relations whose name resembles the question
+    params["w_f"][3] = -2.0  # prefer facts that touch where the walk stands over facts found
+    #                          by similarity alone
+    params["w_f"][8] = 1.0   # each (relation, direction) kind gets equal mass, not each fact:
+    #                          a node with 30 parts does not drown the rest
+    params["w_f"][9] = 2.0   # prefer facts that make the path cover more of the question
     params["b_stop"][0] = 1.5         # STOP keeps a fair share (~1/3) at every hop
     return params
 
@@ -125,14 +137,15 @@ def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot)
     return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"])
 
 
-def scores(P: dict, ops, q, h, here, hop, cand, feats, mask, stop_feats):
+def scores(P: dict, ops, q, h, here, qrel, hop, cand, feats, mask, stop_feats):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
-    q [B, D], h [B, H], here [B, D] (the vector of the entity each walker stands on), hop [B]
-    int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
+    q [B, D], h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
+    (row of ``Q``: the asked relation, the last row for questions in words), hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
     (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
     """
-    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["b_hop"][ops.asarray(hop)])
+    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["Q"][ops.asarray(qrel)]
+                 + P["b_hop"][ops.asarray(hop)])
     s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s = ops.where(ops.asarray(mask), s, NEG)
     s_stop = (z * P["w_stop"]).sum(-1, keepdims=True) + stop_feats @ P["w_g"][:, None] + P["b_stop"]
@@ -212,11 +225,11 @@ class Policy:
         return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
 
 
-def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict):
+def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict, qrel=None):
     """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H]).
 
     ``batch`` comes from ``env.pad_candidates``; ``relmap`` maps the graph's relations to the
-    policy's.  Training (torch) and search (numpy) both call this, so they share every number.
+    policy's; ``qrel`` [B] is the policy's index of each walker's asked relation (-1: none).  Training (torch) and search (numpy) both call this, so they share every number.
     """
     facts = batch["facts"]
     B, C = facts.shape
@@ -231,6 +244,9 @@ def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict):
                          (P["E"].shape[0] - 1) // 2)
     cand = candidate_repr(P, ops, fv, inv.reshape(-1), rv, rel, dirs, slot).reshape(B, C, -1)
     here = ops.asarray(np.asarray(graph.entity_vecs[batch["here"]], np.float32))
-    logp = scores(P, ops, q, h, here, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
+    n_q = P["Q"].shape[0] - 1
+    qrel = np.full(B, -1) if qrel is None else np.asarray(qrel, np.int64)
+    qrel = np.where((qrel >= 0) & (qrel < n_q), qrel, n_q)
+    logp = scores(P, ops, q, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]))
     return logp, cand

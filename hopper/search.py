@@ -74,8 +74,11 @@ def _finish(ranked_scores: dict, best_path: dict, starts: list) -> Outcome:
 
 def beam_search(graph: Graph, policy: pol.Policy, qvec: np.ndarray, starts: list,
                 beam: int = BEAM, hidden: frozenset = frozenset(), max_hops: int | None = None,
-                relmap: np.ndarray | None = None) -> Outcome:
-    """Beam search over fetch sequences; an answer's score sums the beams that end on it."""
+                relmap: np.ndarray | None = None, qrel: int = -1) -> Outcome:
+    """Beam search over fetch sequences; an answer's score sums the beams that end on it.
+
+    ``qrel`` is the graph index of the asked relation for completion questions (-1: none).
+    """
     if not starts:
         return Outcome([], [], starts, 0.0, True, "no entity of the store is named in the question")
     P = policy.params
@@ -91,12 +94,14 @@ def beam_search(graph: Graph, policy: pol.Policy, qvec: np.ndarray, starts: list
     for t in range(T):
         if not live:
             break
-        cands = [candidates(graph, b.walker, qvec, t, T, linked, hidden, prerank_cache=cache)
-                 for b in live]
+        cap = int(policy.settings.get("adj_cap", 32))
+        cands = [candidates(graph, b.walker, qvec, t, T, linked, hidden, prerank_cache=cache,
+                            cap=cap) for b in live]
         batch = pad_candidates(cands)
         n = len(live)
         logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(qvec[None, :], n, 0),
-                               np.stack([b.h for b in live]), np.full(n, t), batch)
+                               np.stack([b.h for b in live]), np.full(n, t), batch,
+                               qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1))
         nxt: list[_Beam] = []
         for i, b in enumerate(live):
             lp = logp[i]

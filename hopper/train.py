@@ -33,12 +33,13 @@ class TrainSettings:
     batch_questions: int = 32
     epochs: int = 25
     lr: float = 3e-3
-    entropy: float = 0.02       # beta, the entropy bonus
-    action_dropout: float = 0.1  # chance each fact is hidden from the sampler (exploration)
+    entropy: float = 0.05       # beta, the entropy bonus
+    action_dropout: float = 0.3  # chance each action (STOP too) is hidden from the sampler
     fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
     grad_clip: float = 1.0
     patience: int = 5           # epochs without a better validation score before stopping
     beam: int = 16
+    adj_cap: int = 32           # touching facts offered per hop (hubs are pre-ranked and cut)
     seed: int = 0
     time_budget: float = 0.0    # seconds; 0 = no limit
 
@@ -49,7 +50,7 @@ class TrainSettings:
             "epochs": self.epochs >= 1, "lr": 0 < self.lr < 1, "entropy": self.entropy >= 0,
             "action_dropout": 0 <= self.action_dropout < 1, "fetch_cost": 0 <= self.fetch_cost < 1,
             "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
-            "beam": 1 <= self.beam <= 256, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
+            "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
         }
         for name, ok in checks.items():
             if not ok:
@@ -65,6 +66,7 @@ class Episode:
     gold: frozenset
     hidden: frozenset = frozenset()
     hops: int | None = None
+    qrel: int = -1              # the asked relation (graph index) for completion questions
     prerank: dict = field(default_factory=dict)
 
 
@@ -86,7 +88,7 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
-            gen, rng: np.random.Generator, greedy: bool = False):
+            gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32):
     """Sample K walks per episode with the torch policy ``P``.
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
@@ -113,17 +115,19 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
             ents.append(step_ent)
             continue
         cands = [candidates(graph, walkers[i], owner[i].qvec, t, T, frozenset(owner[i].starts),
-                            owner[i].hidden, prerank_cache=owner[i].prerank) for i in idx]
+                            owner[i].hidden, prerank_cache=owner[i].prerank, cap=cap) for i in idx]
         batch = pad_candidates(cands)
-        logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch)
+        asked = np.array([owner[i].qrel for i in idx])
+        qrel = np.where(asked >= 0, relmap[np.maximum(asked, 0)], -1) if len(relmap) else None
+        logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch,
+                               qrel=qrel)
         with torch.no_grad():
             probs = logp.exp()
             if greedy:
                 a = probs.argmax(-1)
             else:
-                if dropout > 0:  # action dropout: hide some facts from the sampler (never STOP)
+                if dropout > 0:  # action dropout: hide some actions from the sampler (exploration)
                     keep = torch.as_tensor(rng.random(tuple(probs.shape)) >= dropout)
-                    keep[:, 0] = True
                     p2 = probs * keep
                     empty = p2.sum(-1, keepdim=True) <= 0
                     probs = torch.where(empty, probs, p2)
@@ -193,7 +197,9 @@ def episodes(graph: Graph, questions: list, qvecs: np.ndarray) -> list[Episode]:
         hidden = frozenset()
         if q.is_completion and starts:
             hidden = hidden_facts(graph, starts[0], q.relation, gold)
-        out.append(Episode(np.asarray(v, np.float32), starts, gold, hidden, q.hops))
+        qrel = graph.relation_names.index(q.relation) if q.is_completion and \
+            q.relation in graph.relation_names else -1
+        out.append(Episode(np.asarray(v, np.float32), starts, gold, hidden, q.hops, qrel))
     return out
 
 
@@ -228,7 +234,7 @@ def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
     hits, rr, conf = [], [], []
     for ep in eps:
         out = beam_search(graph, policy, ep.qvec, ep.starts, beam=beam, hidden=ep.hidden,
-                          relmap=relmap)
+                          relmap=relmap, qrel=ep.qrel)
         h, r = hits_and_rank(out, ep.gold)
         hits.append(h)
         rr.append(r)
@@ -300,7 +306,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
-                settings.action_dropout, gen, rng)
+                settings.action_dropout, gen, rng, cap=settings.adj_cap)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy)
             opt.zero_grad()

