@@ -11,7 +11,7 @@ probabilities.
     candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
                                                                            learned relation vector)
     score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
-    STOP       s_0 = z_t . w_stop + g_t . w_g + b_stop
+    STOP       s_0 = z_t . w_stop + q . u_stop[t] + g_t . w_g + b_stop     (g_t: cheap features)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
 """
@@ -26,7 +26,7 @@ NEG = -1e9  # the score of a padded (absent) candidate
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
     "W_q": ("D", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
-    "w_f": (N_CHEAP,), "w_stop": ("H",), "w_g": (N_STOP,), "b_stop": (1,),
+    "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "D"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
 }
 
@@ -95,7 +95,7 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
     params = {}
     for name, shape in PARAM_SHAPES.items():
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
-        if name.startswith("b_") or name in ("w_g", "Q"):
+        if name.startswith("b_") or name in ("w_g", "Q", "u_stop"):
             params[name] = np.zeros(shp, np.float32)
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
@@ -106,13 +106,14 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
     # Start from a sensible prior rather than noise, so early rollouts reach answers often
     # (feature order as in env.candidates):
     params["w_f"][:] = 0.0
-    params["w_f"][1] = 3.0   # follow relations whose name resembles the question
+    params["w_f"][1] = 8.0   # follow relations whose name resembles the question
     params["w_f"][3] = -2.0  # prefer facts that touch where the walk stands over facts found
     #                          by similarity alone
     params["w_f"][8] = 1.0   # each (relation, direction) kind gets equal mass, not each fact:
     #                          a node with 30 parts does not drown the rest
-    params["w_f"][9] = 2.0   # prefer facts that make the path cover more of the question
-    params["b_stop"][0] = 1.5         # STOP keeps a fair share (~1/3) at every hop
+    params["w_f"][9] = 10.0  # prefer facts that make the path cover more of the question
+    params["b_stop"][0] = 1.5  # STOP keeps a fair share (~1/3) at every hop ...
+    params["w_g"][0] = -4.0    # ... but the first: the entity the question names is not its answer
     return params
 
 
@@ -148,7 +149,8 @@ def scores(P: dict, ops, q, h, here, qrel, hop, cand, feats, mask, stop_feats):
                  + P["b_hop"][ops.asarray(hop)])
     s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s = ops.where(ops.asarray(mask), s, NEG)
-    s_stop = (z * P["w_stop"]).sum(-1, keepdims=True) + stop_feats @ P["w_g"][:, None] + P["b_stop"]
+    s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (q * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
+              + stop_feats @ P["w_g"][:, None] + P["b_stop"])
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 
 

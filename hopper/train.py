@@ -36,6 +36,7 @@ class TrainSettings:
     entropy: float = 0.05       # beta, the entropy bonus
     action_dropout: float = 0.3  # chance each action (STOP too) is hidden from the sampler
     fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
+    scale_advantage: bool = True  # weigh questions equally (see reinforce_loss)
     grad_clip: float = 1.0
     patience: int = 5           # epochs without a better validation score before stopping
     beam: int = 16
@@ -169,14 +170,26 @@ def episode_rewards(correct, active, fetches, last, fetch_cost: float) -> np.nda
     return rewards
 
 
-def reinforce_loss(logp, ent, rewards, active, K: int, entropy_weight: float):
-    """The REINFORCE loss with reward-to-go and the leave-one-out baseline (see module doc)."""
+def reinforce_loss(logp, ent, rewards, active, K: int, entropy_weight: float,
+                   scale: bool = False):
+    """The REINFORCE loss with reward-to-go and the leave-one-out baseline (see module doc).
+
+    With ``scale`` each question's advantages are divided by the spread of its rollouts'
+    returns (plus 0.1), so a hard question whose rare successes carry the only signal weighs
+    as much as an easy one.  That reweights questions; within a question the estimator is
+    the plain one above.
+    """
     import torch
 
     B, T = active.shape
     G = reward_to_go(rewards)                                          # G_t
     b = loo_baseline(G.reshape(-1, K, T), active.reshape(-1, K, T)).reshape(B, T)  # b_t
-    adv = torch.as_tensor((G - b) * active, dtype=torch.float32)      # (G_t - b_t), 0 off-walk
+    A = (G - b) * active                                               # (G_t - b_t), 0 off-walk
+    if scale:
+        R = G[:, 0].reshape(-1, K)                                     # each rollout's return
+        spread = np.repeat(R.std(1), K)[:, None]
+        A = A / (spread + 0.1)
+    adv = torch.as_tensor(A, dtype=logp.dtype)
     act = torch.as_tensor(active)
     n = max(float(active.sum()), 1.0)
     pg = -(adv * logp).sum() / len(adv)                              # - sum_t A_t log pi(a_t|s_t)
@@ -308,7 +321,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
-            loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy)
+            loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
+                                  scale=settings.scale_advantage)
             opt.zero_grad()
             loss.backward()
             torch.nn.utils.clip_grad_norm_(list(P.values()), settings.grad_clip)
