@@ -160,9 +160,9 @@ class Hopper:
             vs = [qs[i] for i in order[:n_valid]]
             qs = [qs[i] for i in order[n_valid:]]
         graph = self._graph_now().in_memory()
-        vecs = self._encode([q.text for q in qs + vs])
-        train_eps = tr.episodes(graph, qs, vecs[:len(qs)])
-        valid_eps = [e for e in tr.episodes(graph, vs, vecs[len(qs):]) if e.starts and e.gold]
+        eps = tr.episodes(graph, qs + vs, self._encode, hide_answers=True)
+        train_eps = eps[:len(qs)]
+        valid_eps = [e for e in eps[len(qs):] if e.starts and e.gold]
         policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log)
         summary["baselines"] = self._tune_baselines(graph, valid_eps or train_eps[:200], max_hops)
         policy.settings.update(summary["baselines"])
@@ -185,7 +185,7 @@ class Hopper:
         for name, fn in (("greedy_hops", greedy), ("walk_hops", walk)):
             scores = []
             for hops in range(1, max_hops + 1):
-                hits = [hits_and_rank(fn(graph, e.qvec, e.starts, hops=hops), e.gold)[0] for e in eps]
+                hits = [hits_and_rank(fn(graph, e, hops=hops), e.gold)[0] for e in eps]
                 scores.append((float(np.mean(hits)) if hits else 0.0, -hops))
             best[name] = -max(scores)[1]
         return best
@@ -238,11 +238,13 @@ class Hopper:
         self.store.require()
         graph = self._graph_now()
         policy = self._policy() if strategy == "policy" else self._baseline_settings()
-        vecs = self._encode([q.text for q in qs])
+        from .env import episodes
+
+        eps = episodes(graph, qs, self._encode)
         results = []
-        for q, v in zip(qs, vecs):
+        for q, ep in zip(qs, eps):
             t0 = time.perf_counter()
-            out = self._solve(graph, policy, strategy, q, v)
+            out = self._solve(graph, policy, strategy, q, ep)
             results.append((q, out, (time.perf_counter() - t0) * 1000))
         return self._report(graph, policy, strategy, results, top, record)
 
@@ -262,38 +264,31 @@ class Hopper:
         graph = self._graph_now()
         policy = self._policy(policy_version) if strategy == "policy" else \
             self._baseline_settings()
-        hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
-        qvec = self._encode([q.text])[0]
+        from .env import episodes
+
+        ep = episodes(graph, [q], self._encode)[0]
+        ep.hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
         t0 = time.perf_counter()
-        out = self._solve(graph, policy, strategy, q, qvec, hidden=hidden)
+        out = self._solve(graph, policy, strategy, q, ep)
         return self._report(graph, policy, strategy, [(q, out, (time.perf_counter() - t0) * 1000)],
                             top, record=False)[0]
 
-    def _starts(self, graph, q: Question, qvec):
-        if q.is_completion:
-            s = graph.entity_index(q.subject)
-            return [s] if s is not None else []
-        return graph.link(q.text, qvec)
-
-    def _solve(self, graph, policy, strategy, q: Question, qvec, hidden=frozenset()):
+    def _solve(self, graph, policy, strategy, q: Question, ep):
         from .search import beam_search, greedy, walk
 
-        starts = self._starts(graph, q, qvec)
+        starts = ep.starts
         if strategy == "policy":
-            qrel = graph.relation_names.index(q.relation) if q.is_completion and \
-                q.relation in graph.relation_names else -1
-            out = beam_search(graph, policy, qvec, starts, beam=int(policy.settings.get("beam", 16)),
-                              hidden=hidden, qrel=qrel)
+            out = beam_search(graph, policy, ep, beam=int(policy.settings.get("beam", 16)))
             if not out.abstained and out.confidence < policy.threshold:
                 out.abstained = True
                 out.reason = (f"confidence {out.confidence:.2f} is below the threshold "
                               f"{policy.threshold:.2f} set on the validation questions")
         elif strategy == "greedy":
             hops = int(policy.settings.get("greedy_hops", 2)) if policy else 2
-            out = greedy(graph, qvec, starts, hops=hops, hidden=hidden)
+            out = greedy(graph, ep, hops=hops)
         else:
             hops = int(policy.settings.get("walk_hops", 2)) if policy else 2
-            out = walk(graph, qvec, starts, hops=hops, hidden=hidden)
+            out = walk(graph, ep, hops=hops)
         if q.is_completion and not starts:
             out.reason = f"the subject '{q.subject}' is not an entity of the store"
         return out
@@ -376,21 +371,21 @@ class Hopper:
             return self._evaluate(questions, strategies)
 
     def _evaluate(self, questions, strategies) -> dict:
-        from .train import episodes, hits_and_rank
+        from .env import episodes
+        from .train import hits_and_rank
 
         for s in strategies:
             _check_choice("strategy", s, STRATEGIES)
         qs = self._questions(questions)
         graph = self._graph_now()
         policy = self._policy() if "policy" in strategies else self._baseline_settings()
-        vecs = self._encode([q.text for q in qs])
-        eps = episodes(graph, qs, vecs)
+        eps = episodes(graph, qs, self._encode)
         table = {}
         for s in strategies:
             rows = []
-            for q, e, v in zip(qs, eps, vecs):
+            for q, e in zip(qs, eps):
                 t0 = time.perf_counter()
-                out = self._solve(graph, policy, s, q, v)
+                out = self._solve(graph, policy, s, q, e)
                 ms = (time.perf_counter() - t0) * 1000
                 h1, rr = hits_and_rank(out, e.gold)
                 rows.append((q.hops, h1, rr, out.n_fetches, ms, out.abstained))

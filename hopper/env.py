@@ -7,7 +7,7 @@ import re
 import shutil
 import tempfile
 import unicodedata
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -358,3 +358,77 @@ def pad_candidates(cands: list) -> dict:
     here = np.array([c.here for c in cands], np.int64)
     return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask, "stop_feats": stop,
             "here": here}
+
+
+MASK = "X"  # stands in for the entity names of a question in the policy's view of it
+
+
+def mask_names(text: str, names: list[str]) -> str:
+    """The question with the named entities replaced by a placeholder.
+
+    The policy reads this masked text, so "Who makes part KX-2041?" and "Who makes part
+    QM-1128?" look the same to it: what to fetch depends on the wording, not on the name,
+    which is what lets it generalise to entities no training question mentions.
+    """
+    for name in sorted(names, key=len, reverse=True):
+        words = [re.escape(w) for w in name.split()]
+        if words:
+            text = re.sub(r"(?<!\w)" + r"\s+".join(words) + r"(?!\w)", MASK, text,
+                          flags=re.IGNORECASE)
+    return text
+
+
+@dataclass
+class Episode:
+    """A question resolved against the graph: where walks start and what counts as right."""
+
+    qvec: np.ndarray          # the question's vector (similarity features, dense search)
+    qstate: np.ndarray        # the vector of the question with its names masked (policy state)
+    starts: list
+    gold: frozenset = frozenset()
+    hidden: frozenset = frozenset()
+    hops: int | None = None
+    qrel: int = -1            # the asked relation (graph index) for completion questions
+    prerank: dict = field(default_factory=dict)
+
+
+def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
+    """The facts that state a completion answer directly, hidden from the walk in training."""
+    facts, dirs = graph.neighbours(subject)
+    try:
+        r = graph.relation_names.index(relation)
+    except ValueError:
+        return frozenset()
+    return frozenset(int(f) for f, d in zip(facts, dirs)
+                     if d == 0 and graph.rel[f] == r and int(graph.obj[f]) in gold)
+
+
+def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) -> list:
+    """Resolve questions: link start entities, encode the raw and the masked wording.
+
+    ``encode`` maps a list of texts to unit vectors.  With ``hide_answers`` (training on
+    completion questions) the facts that state the answer directly are hidden.
+    """
+    raw = encode([q.text for q in questions]) if questions else np.zeros((0, 0), np.float32)
+    starts, masked = [], []
+    for q, v in zip(questions, raw):
+        if q.is_completion:
+            s = graph.entity_index(q.subject)
+            st = [s] if s is not None else []
+        else:
+            st = graph.link(q.text, v)
+        starts.append(st)
+        masked.append(mask_names(q.text, [graph.entity_names[e] for e in st]))
+    same = [m == q.text for m, q in zip(masked, questions)]
+    todo = [m for m, sm in zip(masked, same) if not sm]
+    mvecs = iter(encode(todo)) if todo else iter(())
+    out = []
+    for q, v, st, sm in zip(questions, raw, starts, same):
+        qstate = np.asarray(v if sm else next(mvecs), np.float32)
+        gold = frozenset(e for e in (graph.entity_index(a) for a in q.answers) if e is not None)
+        hidden = hidden_facts(graph, st[0], q.relation, gold) if (
+            hide_answers and q.is_completion and st) else frozenset()
+        qrel = graph.relation_names.index(q.relation) if q.is_completion and \
+            q.relation in graph.relation_names else -1
+        out.append(Episode(np.asarray(v, np.float32), qstate, st, gold, hidden, q.hops, qrel))
+    return out

@@ -5,13 +5,16 @@ runs it on torch tensors (for gradients) and ``ask`` runs the very same function
 arrays (no torch import on the hot path).  ``tests/test_policy.py`` checks both give the same
 probabilities.
 
-    state      z_t = tanh(q W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t])  (e_t: where it stands;
+    question   x = (q - q_mean) q_proj      (q: the question with names masked, whitened by PCA
+                                            on the training questions, so wordings that differ
+                                            in a few words are far apart; fixed, not trained)
+    state      z_t = tanh(x W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t])  (e_t: where it stands;
                                                                            r_q: the relation asked,
                                                                            for completion questions)
     candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
                                                                            learned relation vector)
     score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
-    STOP       s_0 = z_t . w_stop + q . u_stop[t] + g_t . w_g + b_stop     (g_t: cheap features)
+    STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop     (g_t: cheap features)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
 """
@@ -24,14 +27,16 @@ from .env import N_CHEAP, N_STOP
 NEG = -1e9  # the score of a padded (absent) candidate
 
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
-    "W_q": ("D", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
+    "q_mean": ("D",), "q_proj": ("D", "K"),
+    "W_q": ("K", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
-    "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "D"), "w_g": (N_STOP,), "b_stop": (1,),
+    "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "K"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
 }
 
 
-TEXT_INPUTS = ("W_q", "W_v", "W_u", "W_e")  # the weights that read sentence vectors
+TEXT_INPUTS = ("W_v", "W_u", "W_e")  # the weights that read unit-length sentence vectors
+FIXED = ("q_mean", "q_proj")           # set from the training questions, not by gradient
 
 
 class NumpyOps:
@@ -87,13 +92,34 @@ class TorchOps:
         return self.torch.as_tensor(x)
 
 
-def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int) -> dict:
-    """Small random weights (scaled by fan-in), as float32 numpy arrays."""
+def question_basis(qstates: np.ndarray, k: int = 64, seed: int = 0):
+    """PCA whitening of the training questions (scikit-learn): (mean [D], projection [D, k])."""
+    from sklearn.decomposition import PCA
+
+    X = np.unique(np.asarray(qstates, np.float32), axis=0)
+    k = int(min(k, max(len(X) - 1, 1), X.shape[1]))
+    if len(X) < 3:
+        return np.zeros(X.shape[1], np.float32), np.eye(X.shape[1], k, dtype=np.float32)
+    pca = PCA(n_components=k, whiten=True, random_state=seed).fit(X)
+    proj = pca.components_.T / np.sqrt(pca.explained_variance_ + 1e-6)[None, :]
+    return pca.mean_.astype(np.float32), proj.astype(np.float32)
+
+
+def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int,
+                basis=None) -> dict:
+    """Small random weights (scaled by fan-in), as float32 numpy arrays.
+
+    ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they are.
+    """
     rng = np.random.default_rng(seed)
+    q_mean, q_proj = basis if basis is not None else (np.zeros(dim, np.float32),
+                                                      np.eye(dim, dtype=np.float32))
     sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
-             "R1": n_relations + 1}
-    params = {}
+             "R1": n_relations + 1, "K": q_proj.shape[1]}
+    params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32)}
     for name, shape in PARAM_SHAPES.items():
+        if name in FIXED:
+            continue
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
         if name.startswith("b_") or name in ("w_g", "Q", "u_stop"):
             params[name] = np.zeros(shp, np.float32)
@@ -145,11 +171,12 @@ def scores(P: dict, ops, q, h, here, qrel, hop, cand, feats, mask, stop_feats):
     (row of ``Q``: the asked relation, the last row for questions in words), hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
     (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
     """
-    z = ops.tanh(q @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["Q"][ops.asarray(qrel)]
+    x = (q - P["q_mean"]) @ P["q_proj"]
+    z = ops.tanh(x @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["Q"][ops.asarray(qrel)]
                  + P["b_hop"][ops.asarray(hop)])
     s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s = ops.where(ops.asarray(mask), s, NEG)
-    s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (q * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
+    s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (x * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
               + stop_feats @ P["w_g"][:, None] + P["b_stop"])
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import policy as pol
-from .env import Graph, Walker, candidates, pad_candidates
+from .env import Episode, Graph, Walker, candidates, pad_candidates
 
 N_ALTERNATIVES = 5   # facts passed over, recorded per hop
 BEAM = 16
@@ -72,13 +72,10 @@ def _finish(ranked_scores: dict, best_path: dict, starts: list) -> Outcome:
     return Outcome(ranked, list(path), starts, conf, False, None, float(len(path)))
 
 
-def beam_search(graph: Graph, policy: pol.Policy, qvec: np.ndarray, starts: list,
-                beam: int = BEAM, hidden: frozenset = frozenset(), max_hops: int | None = None,
-                relmap: np.ndarray | None = None, qrel: int = -1) -> Outcome:
-    """Beam search over fetch sequences; an answer's score sums the beams that end on it.
-
-    ``qrel`` is the graph index of the asked relation for completion questions (-1: none).
-    """
+def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
+                max_hops: int | None = None, relmap: np.ndarray | None = None) -> Outcome:
+    """Beam search over fetch sequences; an answer's score sums the beams that end on it."""
+    qvec, starts, hidden, qrel = ep.qvec, ep.starts, ep.hidden, ep.qrel
     if not starts:
         return Outcome([], [], starts, 0.0, True, "no entity of the store is named in the question")
     P = policy.params
@@ -99,7 +96,7 @@ def beam_search(graph: Graph, policy: pol.Policy, qvec: np.ndarray, starts: list
                             cap=cap) for b in live]
         batch = pad_candidates(cands)
         n = len(live)
-        logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(qvec[None, :], n, 0),
+        logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(ep.qstate[None, :], n, 0),
                                np.stack([b.h for b in live]), np.full(n, t), batch,
                                qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1))
         nxt: list[_Beam] = []
@@ -141,9 +138,9 @@ def _answer_end(graph: Graph, fact: int, seen: set) -> tuple[int, int]:
     return s, 1
 
 
-def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: int = 50,
-           hidden: frozenset = frozenset()) -> Outcome:
+def greedy(graph: Graph, ep: Episode, hops: int = 2, pool: int = 50) -> Outcome:
     """Baseline: fetch the fact most similar to the question plus the texts fetched so far."""
+    qvec, starts, hidden = ep.qvec, ep.starts, ep.hidden
     fetched: list[int] = []
     steps: list[Fetch] = []
     seen = set(starts)
@@ -172,9 +169,9 @@ def greedy(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2, pool: in
     return out
 
 
-def walk(graph: Graph, qvec: np.ndarray, starts: list, hops: int = 2,
-         hidden: frozenset = frozenset()) -> Outcome:
+def walk(graph: Graph, ep: Episode, hops: int = 2) -> Outcome:
     """Baseline: from the linked entity, follow the touching fact most similar to the question."""
+    qvec, starts, hidden = ep.qvec, ep.starts, ep.hidden
     if not starts:
         return Outcome([], [], starts, 0.0, True, "no entity of the store is named in the question")
     here = starts[0]

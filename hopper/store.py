@@ -2,6 +2,8 @@
 from __future__ import annotations
 
 import contextlib
+import errno
+import fcntl
 import os
 import random
 import time
@@ -45,8 +47,12 @@ CREATE TABLE IF NOT EXISTS runs (
 CREATE TABLE IF NOT EXISTS run_fetches (
     run_id VARCHAR NOT NULL, hop INTEGER NOT NULL, fact_id INTEGER NOT NULL,
     probability DOUBLE NOT NULL, from_entity VARCHAR, to_entity VARCHAR,
-    alternatives JSON, PRIMARY KEY (run_id, hop));
+    alternatives JSON, direction VARCHAR, PRIMARY KEY (run_id, hop));
 """
+
+# Columns added after a store format shipped: (table, column, type).  A write connection adds
+# any that are missing (ALTER TABLE appends, so positional INSERTs see the same order).
+_ADDED_COLUMNS = [("run_fetches", "direction", "VARCHAR")]
 
 _DUCKDB_MAGIC = b"DUCK"
 LOCK_TIMEOUT = float(os.environ.get("HOPPER_LOCK_TIMEOUT", "120"))
@@ -71,12 +77,86 @@ def _is_lock_error(exc: Exception) -> bool:
     return "lock" in text and ("conflict" in text or "could not set" in text)
 
 
+_MAX_BACKOFF = 0.05  # seconds; each wait is jittered to 50-150 % of the current step
+
+
+def _busy(path) -> StoreBusyError:
+    return StoreBusyError(
+        f"{path}: another process has held the store for too long; try again "
+        "(HOPPER_LOCK_TIMEOUT sets the wait in seconds)")
+
+
+def _open_lock_file(path: Path) -> int | None:
+    """A descriptor for a lock file, creating it if we may; None when it cannot be opened
+    (a read-only folder without the file), in which case the caller goes without flock."""
+    try:
+        return os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o666)
+    except OSError:
+        try:  # flock needs no write access, so an existing file in a read-only folder works
+            return os.open(path, os.O_RDONLY | os.O_CLOEXEC)
+        except OSError:
+            return None
+
+
+def _flock(path: Path, exclusive: bool, deadline: float, store: Path) -> int | None:
+    """Lock ``path`` (shared or exclusive), polling until ``deadline``.
+
+    Returns the descriptor holding the lock, or None when flock is unavailable there.  When the
+    file was removed or replaced while we waited (someone deleted the store and its side files),
+    the lock is on a dead inode, so we start again on the current file.
+    """
+    mode = (fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH) | fcntl.LOCK_NB
+    delay = 0.002
+    while True:
+        fd = _open_lock_file(path)
+        if fd is None:
+            return None
+        try:
+            while True:
+                try:
+                    fcntl.flock(fd, mode)
+                    break
+                except OSError as exc:
+                    if exc.errno not in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+                        os.close(fd)  # no flock on this file system: go without
+                        fd = None
+                        return None
+                if time.monotonic() > deadline:
+                    raise _busy(store)
+                time.sleep(delay * (0.5 + random.random()))
+                delay = min(delay * 2, _MAX_BACKOFF)
+            held = os.fstat(fd)
+            try:
+                now = os.stat(path)
+                current = (now.st_dev, now.st_ino) == (held.st_dev, held.st_ino)
+            except OSError:
+                current = False
+        except BaseException:
+            if fd is not None:
+                os.close(fd)
+            raise
+        if current:
+            return fd
+        os.close(fd)
+
+
 class Store:
     """A hopper store on disk.  Connections are short-lived: open, work, close.
 
     DuckDB lets one process write a file at a time, and a reader cannot open the file while
     another process writes it.  So every command holds a connection only for as long as it
     reads or writes, and waits with jittered back-off when another process holds the lock.
+
+    DuckDB reads the file header before it takes its own lock, so a connection opened while
+    another process checkpoints can work from a stale header (lost rows, "Could not read enough
+    bytes").  So hopper guards each connection with ``flock`` on two files beside the store:
+    a writer holds ``<store>.gate`` and then ``<store>.lock`` exclusively until it closes; a
+    reader takes ``.gate`` shared, then ``.lock`` shared, lets go of ``.gate`` at once and
+    keeps ``.lock`` until it closes.  No connection opens while a writer is open, and a waiting
+    writer (holding ``.gate``) stops new readers, so a stream of readers cannot starve writers.
+    Waits poll with jittered back-off (at most 50 ms) until the same deadline as DuckDB's lock
+    (``StoreBusyError``).  DuckDB's lock errors are still retried, for other clients that ignore
+    these files.  In a read-only folder without the files, hopper goes without them.
     """
 
     def __init__(self, path: str | os.PathLike | None = None):
@@ -123,13 +203,42 @@ class Store:
             self.check_file()
             self.path.parent.mkdir(parents=True, exist_ok=True)
         else:
-            self.require()
+            self.require()  # before any lock file is made: none for a path that is no store
         deadline = time.monotonic() + (LOCK_TIMEOUT if timeout is None else timeout)
+        gate = data = None
+        try:
+            gate = _flock(Path(str(self.path) + ".gate"), write, deadline, self.path)
+            if gate is not None:
+                data = _flock(Path(str(self.path) + ".lock"), write, deadline, self.path)
+                if not write or data is None:
+                    os.close(gate)  # readers only pass through the gate
+                    gate = None
+            # the store may have been removed or replaced while we waited
+            if write:
+                self.check_file()
+            else:
+                self.require()
+            con = self._open(write, deadline)
+            try:
+                if write:
+                    self._ensure_schema(con)
+                elif not self._has_schema(con):
+                    raise InputError("is a DuckDB file but not a hopper store", file=str(self.path),
+                                     hint="give --store a hopper store or a new path")
+                yield con
+            finally:
+                con.close()
+        finally:
+            for fd in (data, gate):
+                if fd is not None:
+                    os.close(fd)
+
+    def _open(self, write: bool, deadline: float):
+        """duckdb.connect, retrying DuckDB's own lock errors (clients that ignore our files)."""
         delay = 0.02
         while True:
             try:
-                con = duckdb.connect(str(self.path), read_only=not write)
-                break
+                return duckdb.connect(str(self.path), read_only=not write)
             except duckdb.Error as exc:
                 if not _is_lock_error(exc):
                     if "not a valid duckdb" in str(exc).lower() or "unable to open" in str(exc).lower():
@@ -137,20 +246,9 @@ class Store:
                                          file=str(self.path)) from None
                     raise
                 if time.monotonic() > deadline:
-                    raise StoreBusyError(
-                        f"{self.path}: another process has held the store for too long; try again "
-                        "(HOPPER_LOCK_TIMEOUT sets the wait in seconds)") from None
+                    raise _busy(self.path) from None
                 time.sleep(delay * (0.5 + random.random()))
                 delay = min(delay * 2, 0.5)
-        try:
-            if write:
-                self._ensure_schema(con)
-            elif not self._has_schema(con):
-                raise InputError("is a DuckDB file but not a hopper store", file=str(self.path),
-                                 hint="give --store a hopper store or a new path")
-            yield con
-        finally:
-            con.close()
 
     @contextlib.contextmanager
     def transaction(self, timeout: float | None = None):
@@ -174,6 +272,7 @@ class Store:
 
     def _ensure_schema(self, con) -> None:
         if self._has_schema(con):
+            self._add_columns(con)
             return
         tables = first(con.execute("SELECT count(*) FROM information_schema.tables "
                              "WHERE table_schema = 'main'"))[0]
@@ -186,6 +285,16 @@ class Store:
         con.execute("INSERT INTO meta VALUES ('schema_version', ?), ('facts_version', '0')",
                     [str(SCHEMA_VERSION)])
         con.execute("COMMIT")
+
+    @staticmethod
+    def _add_columns(con) -> None:
+        """Bring a store made before a column was added up to date (write connections only)."""
+        have = {(t, c) for t, c in con.execute(
+            "SELECT table_name, column_name FROM information_schema.columns "
+            "WHERE table_schema = 'main'").fetchall()}
+        for table, column, kind in _ADDED_COLUMNS:
+            if (table, column) not in have and any(t == table for t, _ in have):
+                con.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
 
     # -- small helpers -------------------------------------------------------------------
     @staticmethod

@@ -14,12 +14,12 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 import numpy as np
 
 from . import policy as pol
-from .env import Graph, Walker, candidates, pad_candidates
+from .env import Episode, Graph, Walker, candidates, episodes, hidden_facts, pad_candidates  # noqa: F401
 from .errors import InputError
 
 
@@ -30,12 +30,13 @@ class TrainSettings:
     max_hops: int = 4
     hidden: int = 64
     rollouts: int = 8           # K walks per question, for the leave-one-out baseline
-    batch_questions: int = 32
+    batch_questions: int = 16
     epochs: int = 25
-    lr: float = 3e-3
+    lr: float = 1e-2
     entropy: float = 0.05       # beta, the entropy bonus
     action_dropout: float = 0.3  # chance each action (STOP too) is hidden from the sampler
     fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
+    type_reward: float = 0.3    # shaping: credit for a wrong answer of the right kind (x overlap)
     scale_advantage: bool = True  # weigh questions equally (see reinforce_loss)
     grad_clip: float = 1.0
     patience: int = 5           # epochs without a better validation score before stopping
@@ -50,25 +51,13 @@ class TrainSettings:
             "rollouts": 2 <= self.rollouts <= 256, "batch_questions": self.batch_questions >= 1,
             "epochs": self.epochs >= 1, "lr": 0 < self.lr < 1, "entropy": self.entropy >= 0,
             "action_dropout": 0 <= self.action_dropout < 1, "fetch_cost": 0 <= self.fetch_cost < 1,
+            "type_reward": 0 <= self.type_reward < 1,
             "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
         }
         for name, ok in checks.items():
             if not ok:
                 raise InputError(f"out of range: {getattr(self, name)!r}", field=name)
-
-
-@dataclass
-class Episode:
-    """A training or evaluation question, resolved against the graph."""
-
-    qvec: np.ndarray
-    starts: list
-    gold: frozenset
-    hidden: frozenset = frozenset()
-    hops: int | None = None
-    qrel: int = -1              # the asked relation (graph index) for completion questions
-    prerank: dict = field(default_factory=dict)
 
 
 def reward_to_go(rewards: np.ndarray) -> np.ndarray:
@@ -89,7 +78,8 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
-            gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32):
+            gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
+            type_reward: float = 0.0):
     """Sample K walks per episode with the torch policy ``P``.
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
@@ -100,7 +90,7 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     walkers = [Walker(ep.starts[k % len(ep.starts)], (), (ep.starts[k % len(ep.starts)],))
                for ep in eps for k in range(K)]
     owner = [ep for ep in eps for _ in range(K)]
-    q = ops.asarray(np.stack([ep.qvec for ep in owner]))
+    q = ops.asarray(np.stack([ep.qstate for ep in owner]))
     H = P["W_h"].shape[0]
     h = torch.zeros(B, H)
     alive = np.ones(B, bool)
@@ -156,8 +146,30 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
                             pol.next_memory(P, ops, h[torch.as_tensor(idx[moved])], chosen))
     final = np.array([w.entity for w in walkers])
     correct = np.array([final[i] in owner[i].gold for i in range(B)], np.float32)
+    if type_reward > 0:  # shaping: partial credit for stopping on an entity of the answer's kind
+        for i in np.flatnonzero(correct == 0):
+            correct[i] = type_reward * max((kind_overlap(graph, int(final[i]), g_) for g_ in owner[i].gold),
+                                           default=0.0)
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
     return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
+
+
+def kind_overlap(graph: Graph, a: int, b: int) -> float:
+    """Jaccard overlap of the (relation, direction) kinds of facts touching two entities.
+
+    Entities of one kind (two cities, two suppliers) take part in the same kinds of facts, so
+    this says "the walk stopped on the right sort of thing" without naming types anywhere.
+    """
+    cache = graph.__dict__.setdefault("_kinds", {})
+
+    def kinds(e):
+        if e not in cache:
+            f, d = graph.neighbours(e)
+            cache[e] = frozenset((graph.rel[np.asarray(f, np.int64)].astype(np.int64) * 2 + d).tolist())
+        return cache[e]
+
+    ka, kb = kinds(a), kinds(b)
+    return len(ka & kb) / len(ka | kb) if ka | kb else 0.0
 
 
 def episode_rewards(correct, active, fetches, last, fetch_cost: float) -> np.ndarray:
@@ -197,36 +209,6 @@ def reinforce_loss(logp, ent, rewards, active, K: int, entropy_weight: float,
     return pg - entropy_weight * bonus
 
 
-def episodes(graph: Graph, questions: list, qvecs: np.ndarray) -> list[Episode]:
-    """Resolve questions against the graph: start entities, gold answers, hidden facts."""
-    out = []
-    for q, v in zip(questions, qvecs):
-        if q.is_completion:
-            s = graph.entity_index(q.subject)
-            starts = [s] if s is not None else []
-        else:
-            starts = graph.link(q.text, v)
-        gold = frozenset(e for e in (graph.entity_index(a) for a in q.answers) if e is not None)
-        hidden = frozenset()
-        if q.is_completion and starts:
-            hidden = hidden_facts(graph, starts[0], q.relation, gold)
-        qrel = graph.relation_names.index(q.relation) if q.is_completion and \
-            q.relation in graph.relation_names else -1
-        out.append(Episode(np.asarray(v, np.float32), starts, gold, hidden, q.hops, qrel))
-    return out
-
-
-def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
-    """The facts that state a completion answer directly, hidden from the walk during training."""
-    facts, dirs = graph.neighbours(subject)
-    try:
-        r = graph.relation_names.index(relation)
-    except ValueError:
-        return frozenset()
-    return frozenset(int(f) for f, d in zip(facts, dirs)
-                     if d == 0 and graph.rel[f] == r and int(graph.obj[f]) in gold)
-
-
 def hits_and_rank(outcome, gold: frozenset) -> tuple[float, float]:
     """(Hits@1, reciprocal rank) of a ranked answer list against the gold set."""
     for rank, (e, _) in enumerate(outcome.ranked, start=1):
@@ -246,8 +228,7 @@ def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
     relmap = policy.relation_map(graph.relation_names)
     hits, rr, conf = [], [], []
     for ep in eps:
-        out = beam_search(graph, policy, ep.qvec, ep.starts, beam=beam, hidden=ep.hidden,
-                          relmap=relmap, qrel=ep.qrel)
+        out = beam_search(graph, policy, ep, beam=beam, relmap=relmap)
         h, r = hits_and_rank(out, ep.gold)
         hits.append(h)
         rr.append(r)
@@ -294,10 +275,11 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
     gen = torch.Generator().manual_seed(settings.seed)
     rng = np.random.default_rng(settings.seed)
     n_rel = len(graph.relation_names)
+    basis = pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
     init = pol.init_params(graph.fact_vecs.shape[1], settings.hidden, n_rel, settings.max_hops,
-                           settings.seed)
-    P = {k: torch.tensor(v, requires_grad=True) for k, v in init.items()}
-    opt = torch.optim.Adam(P.values(), lr=settings.lr)
+                           settings.seed, basis=basis)
+    P = {k: torch.tensor(v, requires_grad=k not in pol.FIXED) for k, v in init.items()}
+    opt = torch.optim.Adam([v for k, v in P.items() if k not in pol.FIXED], lr=settings.lr)
     ops = pol.TorchOps()
     relmap = np.arange(n_rel)
     base_settings = asdict(settings) | {"relations": list(graph.relation_names)}
@@ -319,13 +301,15 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
-                settings.action_dropout, gen, rng, cap=settings.adj_cap)
+                settings.action_dropout, gen, rng, cap=settings.adj_cap,
+                type_reward=settings.type_reward)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
             opt.zero_grad()
             loss.backward()
-            torch.nn.utils.clip_grad_norm_(list(P.values()), settings.grad_clip)
+            torch.nn.utils.clip_grad_norm_([v for k, v in P.items() if k not in pol.FIXED],
+                                           settings.grad_clip)
             opt.step()
             rollouts_done += len(correct)
             rewards_seen.append(float(correct.mean()))

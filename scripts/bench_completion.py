@@ -151,9 +151,7 @@ def hide_both_ways():
     """Hide, for a completion question (subject, R, gold), every fact that states the answer:
     (subject, R, gold) read forward and (gold, inverse(R), subject) read backwards.  Core
     ``hidden_facts`` hides only the first; with inverse relation names the second leaks."""
-    from hopper import train as tr
-
-    original = tr.hidden_facts
+    from hopper import env, train as tr
 
     def hidden(graph, subject, relation, gold):
         names = graph.relation_names
@@ -165,11 +163,56 @@ def hide_both_ways():
                          if (int(graph.rel[f]), int(d)) in want
                          and graph.far_end(int(f), int(d)) in gold)
 
-    tr.hidden_facts = hidden
+    with _patched([(m, "hidden_facts", hidden) for m in (env, tr) if hasattr(m, "hidden_facts")]):
+        yield
+
+
+@contextlib.contextmanager
+def filtered_validation(known: dict):
+    """Early-stop on *filtered* Hits@1 / MRR.  Core ``validate`` ranks the gold answers among
+    all answers, so a walk that finds an answer already known from train counts as a miss."""
+    from hopper import train as tr
+
+    original_validate, original_hr = tr.validate, tr.hits_and_rank
+    state: dict = {}
+
+    def hits_and_rank(outcome, gold):
+        if "true" not in state:
+            return original_hr(outcome, gold)
+        scores = dict(outcome.ranked)
+        ranks = [filtered_rank(scores, g, state["true"], state["n"]) for g in gold]
+        if not ranks:
+            return 0.0, 0.0
+        return sum(r <= 1 for r in ranks) / len(ranks), sum(1 / r for r in ranks) / len(ranks)
+
+    def validate(graph, policy, eps, beam):
+        names, rels = graph.entity_names, graph.relation_names
+        hits, rr, conf = [], [], []
+        for ep in eps:
+            key = (names[ep.starts[0]], rels[ep.qrel]) if ep.starts and ep.qrel >= 0 else None
+            state["true"] = {graph.entity_index(e) for e in known.get(key, ())} | set(ep.gold)
+            state["n"] = len(names)
+            h, r, c = original_validate(graph, policy, [ep], beam)
+            hits.append(h)
+            rr.append(r)
+            conf += c
+        state.clear()
+        return (sum(hits) / len(hits) if hits else 0.0, sum(rr) / len(rr) if rr else 0.0, conf)
+
+    with _patched([(tr, "validate", validate), (tr, "hits_and_rank", hits_and_rank)]):
+        yield
+
+
+@contextlib.contextmanager
+def _patched(changes):
+    saved = [(m, name, getattr(m, name)) for m, name, _ in changes]
     try:
+        for m, name, value in changes:
+            setattr(m, name, value)
         yield
     finally:
-        tr.hidden_facts = original
+        for m, name, value in saved:
+            setattr(m, name, value)
 
 
 # -- evaluation ------------------------------------------------------------------------------------
@@ -294,13 +337,13 @@ def main(argv=None) -> int:
         valid_q = [valid_q[i] for i in sorted(rng.choice(len(valid_q), args.valid_queries, replace=False))]
     log(f"training on {len(train_q)} queries ({len(valid_q)} for validation), "
         f"budget {args.minutes:g} min, settings {settings}")
+    known = known_answers(train + valid + test, inverse=inverse)
     t0 = time.monotonic()
-    with hide_both_ways():
+    with hide_both_ways(), filtered_validation(known_answers(train + valid, inverse=inverse)):
         summary = hp.train(train_q, valid=valid_q, seed=args.seed, max_hops=max_hops,
                            progress=False, log=lambda m: log("  " + m), **settings)
     train_s = time.monotonic() - t0
     t0 = time.monotonic()
-    known = known_answers(train + valid + test, inverse=inverse)
     ranks, by_dir = rank_queries(hp, test, known, entities, beam=args.beam)
     eval_s = time.monotonic() - t0
     ours = ranking_metrics(ranks)

@@ -32,7 +32,7 @@ def _exact_expected_reward(P, graph, ep, T, cost):
     """J = sum over every fetch sequence of P(sequence) * R(sequence), differentiable in P."""
     ops = pol.TorchOps()
     relmap = np.arange(len(graph.relation_names))
-    q = ops.asarray(ep.qvec[None, :])
+    q = ops.asarray(ep.qstate[None, :])
 
     def walk(walker, h, t, logp, fetched):
         reward = lambda: float(walker.entity in ep.gold) - cost * fetched  # noqa: E731
@@ -65,7 +65,7 @@ def test_reinforce_gradient_matches_exact_gradient(tiny_graph):
     rng = np.random.default_rng(1)
     q = rng.standard_normal(16).astype(np.float32)
     q /= np.linalg.norm(q)
-    ep = tr.Episode(q, [g.entity_index("a")], frozenset([g.entity_index("c")]))
+    ep = tr.Episode(q, q, [g.entity_index("a")], frozenset([g.entity_index("c")]))
     init = pol.init_params(16, 8, len(g.relation_names), T, seed=3)
     P = {k: torch.tensor(v, dtype=torch.float64, requires_grad=True) for k, v in init.items()}
     torch.set_default_dtype(torch.float64)
