@@ -355,9 +355,12 @@ class Hopper:
                         doc["abstained"], doc.get("reason"), json.dumps(doc["ranked"]),
                         json.dumps(doc["start_entities"]), graph.facts_version, round(ms, 3)])
                     for f in doc["fetches"]:
-                        con.execute("INSERT INTO run_fetches VALUES (?, ?, ?, ?, ?, ?, ?)", [
-                            doc["run_id"], f["hop"], f["fact_id"], f["probability"], f["from"],
-                            f["to"], json.dumps(f["alternatives"])])
+                        con.execute("INSERT INTO run_fetches (run_id, hop, fact_id, probability, "
+                                    "from_entity, to_entity, alternatives, direction) "
+                                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?)", [
+                                        doc["run_id"], f["hop"], f["fact_id"], f["probability"],
+                                        f["from"], f["to"], json.dumps(f["alternatives"]),
+                                        f["direction"]])
         for doc, _, ms in runs:
             doc["elapsed_ms"] = round(ms, 3)
         return docs

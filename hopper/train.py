@@ -105,8 +105,7 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
             logps.append(step_logp)
             ents.append(step_ent)
             continue
-        cands = [candidates(graph, walkers[i], owner[i].qvec, t, T, frozenset(owner[i].starts),
-                            owner[i].hidden, prerank_cache=owner[i].prerank, cap=cap) for i in idx]
+        cands = [_candidates_cached(graph, walkers[i], owner[i], t, T, cap) for i in idx]
         batch = pad_candidates(cands)
         asked = np.array([owner[i].qrel for i in idx])
         qrel = np.where(asked >= 0, relmap[np.maximum(asked, 0)], -1) if len(relmap) else None
@@ -152,6 +151,18 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
                                            default=0.0)
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
     return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
+
+
+def _candidates_cached(graph: Graph, walker: Walker, ep: Episode, t: int, T: int, cap: int):
+    """candidates(), remembered per episode and walk state: rollouts of one question mostly
+    retrace each other's steps."""
+    key = ("cand", walker.visited, walker.fetched, t)
+    c = ep.prerank.get(key)
+    if c is None:
+        c = candidates(graph, walker, ep.qvec, t, T, frozenset(ep.starts), ep.hidden,
+                       prerank_cache=ep.prerank, cap=cap)
+        ep.prerank[key] = c
+    return c
 
 
 def kind_overlap(graph: Graph, a: int, b: int) -> float:
@@ -257,8 +268,15 @@ def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
     """Train a policy on ``train_eps``, early-stopping on ``valid_eps``; return it and a summary."""
     from threadpoolctl import threadpool_limits
 
-    with threadpool_limits(limits=1, user_api="blas"):  # small products: threads only wait
-        return _fit(graph, train_eps, valid_eps, settings, progress, log)
+    import torch
+
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)  # tiny tensors: more threads only wait for each other
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            return _fit(graph, train_eps, valid_eps, settings, progress, log)
+    finally:
+        torch.set_num_threads(threads)
 
 
 def _fit(graph, train_eps, valid_eps, settings, progress, log):

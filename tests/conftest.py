@@ -48,3 +48,45 @@ def make_graph(triples, dim=16, seed=0):
 def tiny_graph():
     return make_graph([("a", "r1", "b"), ("b", "r2", "c"), ("a", "r3", "d"), ("d", "r2", "e"),
                        ("b", "r3", "e")])
+
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+DEMO = os.path.join(ROOT, "factstores", "supply")
+
+
+def demo_questions(split, per_chain=None, wording=None):
+    """Question dicts from the demo split, optionally a balanced subset per chain."""
+    import json
+
+    rows = [json.loads(line) for line in open(os.path.join(DEMO, f"questions_{split}.jsonl"), encoding="utf-8")]
+    if wording:
+        rows = [r for r in rows if r["wording"] == wording]
+    if per_chain is None:
+        return rows
+    seen: dict = {}
+    out = []
+    for r in rows:
+        if seen.get(r["chain"], 0) < per_chain:
+            seen[r["chain"]] = seen.get(r["chain"], 0) + 1
+            out.append(r)
+    return out
+
+
+@pytest.fixture(scope="session")
+def demo_store(tmp_path_factory):
+    """The demo facts loaded into a fresh store (embedding ~10k texts once per session)."""
+    import hopper
+
+    path = tmp_path_factory.mktemp("demo") / "demo.duckdb"
+    hp = hopper.open_store(path)
+    hp.load([os.path.join(DEMO, "facts.csv")])
+    return hp
+
+
+@pytest.fixture(scope="session")
+def trained_demo(demo_store):
+    """A policy trained on a reduced demo training set (a few minutes at most on 2 cores)."""
+    summary = demo_store.train(demo_questions("train", per_chain=60),
+                               valid=demo_questions("valid", per_chain=8), seed=0,
+                               epochs=12, patience=4)
+    return demo_store, summary
