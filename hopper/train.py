@@ -31,15 +31,16 @@ class TrainSettings:
     hidden: int = 64
     rollouts: int = 8           # K walks per question, for the leave-one-out baseline
     batch_questions: int = 16
-    epochs: int = 25
+    epochs: int = 30
     lr: float = 1e-2
     entropy: float = 0.05       # beta, the entropy bonus
     action_dropout: float = 0.3  # chance each action (STOP too) is hidden from the sampler
     fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
-    type_reward: float = 0.3    # shaping: credit for a wrong answer of the right kind (x overlap)
+    type_reward: float = 0.3    # shaping: credit for a wrong answer of the right kind (x overlap),
+    shaping_epochs: int = 6     # fading to nothing over this many epochs (decoys share kinds)
     scale_advantage: bool = True  # weigh questions equally (see reinforce_loss)
     grad_clip: float = 1.0
-    patience: int = 5           # epochs without a better validation score before stopping
+    patience: int = 8           # epochs without a better validation score before stopping
     beam: int = 16
     adj_cap: int = 32           # touching facts offered per hop (hubs are pre-ranked and cut)
     seed: int = 0
@@ -51,7 +52,7 @@ class TrainSettings:
             "rollouts": 2 <= self.rollouts <= 256, "batch_questions": self.batch_questions >= 1,
             "epochs": self.epochs >= 1, "lr": 0 < self.lr < 1, "entropy": self.entropy >= 0,
             "action_dropout": 0 <= self.action_dropout < 1, "fetch_cost": 0 <= self.fetch_cost < 1,
-            "type_reward": 0 <= self.type_reward < 1,
+            "type_reward": 0 <= self.type_reward < 1, "shaping_epochs": self.shaping_epochs >= 1,
             "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
         }
@@ -314,13 +315,14 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
         bar = tqdm(total=settings.epochs * n_batches, desc="training", unit="batch", file=sys.stderr)
     for epoch in range(settings.epochs):
         order = rng.permutation(len(train_eps))
+        shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
         for bi in range(n_batches):
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
-                type_reward=settings.type_reward)
+                type_reward=shaping)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
@@ -343,10 +345,9 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
         if log:
             log(f"epoch {epoch + 1}: train reward {np.mean(rewards_seen):.3f}, "
                 f"valid Hits@1 {vh:.3f}, MRR {vm:.3f}")
+        stale = 0 if vh > best[0] + 1e-9 else stale + 1  # patience counts Hits@1 gains only
         if (vh, vm) > best:
-            best, best_params, stale = (vh, vm), _numpy_params(P), 0
-        else:
-            stale += 1
+            best, best_params = (vh, vm), _numpy_params(P)
         if stale >= settings.patience:
             break
         if settings.time_budget and time.monotonic() - started > settings.time_budget:

@@ -57,10 +57,8 @@ PUBLISHED = {
 # Training settings per data set (both graphs are dense: every entity touches ~80 (UMLS) or
 # ~160 (Kinship) facts, so the cap on facts offered per hop is raised to the largest degree).
 SETTINGS = {
-    "umls": dict(max_hops=3, adj_cap=320, rollouts=8, batch_questions=64, beam=32,
-                 entropy=0.02, action_dropout=0.1, fetch_cost=0.0, lr=3e-3, patience=100),
-    "kinship": dict(max_hops=3, adj_cap=180, rollouts=8, batch_questions=64, beam=32,
-                    entropy=0.02, action_dropout=0.1, fetch_cost=0.0, lr=3e-3, patience=100),
+    "umls": dict(max_hops=2, adj_cap=320, batch_questions=16, lr=0.01, beam=32, patience=100),
+    "kinship": dict(max_hops=2, adj_cap=180, batch_questions=16, lr=0.01, beam=32, patience=100),
 }
 
 
@@ -216,48 +214,69 @@ def _patched(changes):
 
 
 # -- evaluation ------------------------------------------------------------------------------------
-def rank_queries(hp, test, known: dict, entities: list[str], both: bool = True,
-                 beam: int | None = None) -> tuple[list[float], dict]:
+def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None = None,
+                 both: bool = True, beam: int | None = None) -> dict:
     """Filtered rank of every test triple's answer (each direction a query), from beam scores.
 
     Each distinct (start, relation) query is searched once; its scores rank each of its gold
-    answers, with the other known answers (train + valid + test) filtered out."""
+    answers, with the other known answers (train + valid + test) filtered out.  Returns ranks
+    for "policy" (beam scores only), for "backoff" (entities the beam did not reach, and ties,
+    ordered by ``prior``: {relation: {entity: count}}), per direction, and how many gold
+    answers the beam reached at all."""
     qs = queries(test, both)
     keys = sorted(qs)
-    if beam is not None:  # evaluate with another beam width than the training validation used
-        from hopper.policy import Policy
-
-        orig = Policy.read
-
-        def read(con, version=None):
-            p = orig(con, version)
-            if p is not None:
-                p.settings["beam"] = beam
-            return p
-        Policy.read = read
-    try:
+    with _beam_width(beam):
         docs = hp.ask_many([{"subject": s, "relation": r} for s, r in keys],
                            top=min(1000, len(entities) + 1), record=False)
-    finally:
-        if beam is not None:
-            Policy.read = orig
     ents = set(entities)
-    ranks, by_dir = [], {"tail": [], "head": []}
+    out = {"policy": [], "backoff": [], "tail": [], "head": [], "reached": 0}
     for (s, r), doc in zip(keys, docs):
         scores = {d["answer"]: d["score"] for d in doc["ranked"] if d["answer"] in ents}
+        p = (prior or {}).get(r, {})
+        top = max(p.values(), default=0) + 1
+        mixed = {e: scores.get(e, -1.0) + p.get(e, 0) / top * 1e-3 for e in entities}
         for g in sorted(qs[(s, r)]):
-            rk = filtered_rank(scores, g, known.get((s, r), set()), len(entities))
-            ranks.append(rk)
-            by_dir["head" if r.endswith(INV) else "tail"].append(rk)
-    return ranks, by_dir
+            true = known.get((s, r), set())
+            rk = filtered_rank(scores, g, true, len(entities))
+            out["policy"].append(rk)
+            out["head" if r.endswith(INV) else "tail"].append(rk)
+            out["backoff"].append(filtered_rank(mixed, g, true, len(entities)))
+            out["reached"] += g in scores
+    return out
 
 
-def frequency_ranks(train, test, known, entities, both: bool = True) -> list[float]:
-    """Baseline: rank answers by how often they fill the asked relation (slot) in train."""
+@contextlib.contextmanager
+def _beam_width(beam):
+    """Search with another beam width than the policy was trained and stored with."""
+    if beam is None:
+        yield
+        return
+    from hopper.policy import Policy
+
+    orig = Policy.read.__func__
+
+    def read(cls, con, version=None):
+        p = orig(cls, con, version)
+        if p is not None:
+            p.settings["beam"] = beam
+        return p
+
+    with _patched([(Policy, "read", classmethod(read))]):
+        yield
+
+
+def relation_prior(train) -> dict:
+    """{asked relation: Counter(entity -> how often it fills that slot in train)}."""
     freq = defaultdict(Counter)
     for s, r, o in train:
         freq[r][o] += 1
         freq[inverse(r)][s] += 1
+    return freq
+
+
+def frequency_ranks(train, test, known, entities, both: bool = True) -> list[float]:
+    """Baseline: rank answers by how often they fill the asked relation (slot) in train."""
+    freq = relation_prior(train)
     ranks = []
     for (s, r), golds in sorted(queries(test, both).items()):
         scores = dict(freq[r])
@@ -287,6 +306,11 @@ def fmt(x) -> str:
     return "  -  " if x is None else f"{x:.3f}"
 
 
+def _row(name, m) -> str:
+    return (f"| {name:<48} | {fmt(m.get('hits1'))}  | {fmt(m.get('hits3'))}  | "
+            f"{fmt(m.get('hits10'))}   | {fmt(m.get('mrr'))} |")
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--dataset", choices=sorted(FOLDERS), required=True)
@@ -299,7 +323,12 @@ def main(argv=None) -> int:
                     help="override a training setting (hopper.train.TrainSettings)")
     ap.add_argument("--valid-queries", type=int, default=300,
                     help="validation queries used for early stopping (a sample)")
+    ap.add_argument("--core-validation", action="store_true",
+                    help="early-stop on core's unfiltered validation instead of filtered")
+    ap.add_argument("--eval-only", action="store_true",
+                    help="evaluate the store's active policy without training")
     args = ap.parse_args(argv)
+    argv_text = " ".join(sys.argv[1:] if argv is None else argv)
 
     import numpy as np
 
@@ -326,54 +355,67 @@ def main(argv=None) -> int:
     settings = dict(SETTINGS[args.dataset])
     for kv in args.set:
         k, v = kv.split("=", 1)
-        settings[k] = type(settings.get(k, 0.0))(v) if k in settings else float(v)
-    settings["epochs"] = int(settings.get("epochs", 1000))
+        settings[k] = type(settings[k])(v) if k in settings else \
+            (int(v) if v.lstrip("-").isdigit() else float(v))
+    settings.setdefault("epochs", 1000)
     settings["time_budget"] = args.minutes * 60
     max_hops = int(settings.pop("max_hops"))
-    rng = np.random.default_rng(args.seed)
-    train_q = question_dicts(queries(train))
-    valid_q = question_dicts(queries(valid))
-    if args.valid_queries and len(valid_q) > args.valid_queries:
-        valid_q = [valid_q[i] for i in sorted(rng.choice(len(valid_q), args.valid_queries, replace=False))]
-    log(f"training on {len(train_q)} queries ({len(valid_q)} for validation), "
-        f"budget {args.minutes:g} min, settings {settings}")
     known = known_answers(train + valid + test, inverse=inverse)
+    summary, train_s = None, 0.0
+    if not args.eval_only:
+        rng = np.random.default_rng(args.seed)
+        train_q = question_dicts(queries(train))
+        valid_q = question_dicts(queries(valid))
+        if args.valid_queries and len(valid_q) > args.valid_queries:
+            pick = sorted(rng.choice(len(valid_q), args.valid_queries, replace=False))
+            valid_q = [valid_q[i] for i in pick]
+        log(f"training on {len(train_q)} queries ({len(valid_q)} for validation), "
+            f"budget {args.minutes:g} min, settings {settings}")
+        check = contextlib.nullcontext() if args.core_validation else \
+            filtered_validation(known_answers(train + valid, inverse=inverse))
+        t0 = time.monotonic()
+        with hide_both_ways(), check:
+            summary = hp.train(train_q, valid=valid_q, seed=args.seed, max_hops=max_hops,
+                               progress=False, log=lambda m: log("  " + m), **settings)
+        train_s = time.monotonic() - t0
     t0 = time.monotonic()
-    with hide_both_ways(), filtered_validation(known_answers(train + valid, inverse=inverse)):
-        summary = hp.train(train_q, valid=valid_q, seed=args.seed, max_hops=max_hops,
-                           progress=False, log=lambda m: log("  " + m), **settings)
-    train_s = time.monotonic() - t0
-    t0 = time.monotonic()
-    ranks, by_dir = rank_queries(hp, test, known, entities, beam=args.beam)
+    prior = relation_prior(train)
+    res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam)
     eval_s = time.monotonic() - t0
-    ours = ranking_metrics(ranks)
+    ours = ranking_metrics(res["policy"])
     base = ranking_metrics(frequency_ranks(train, test, known, entities))
 
     print(f"\n## {args.dataset}: filtered test metrics, both directions "
-          f"({ours['n']} queries: {len(test)} test triples x tail and head)")
+          f"({ours['n']} queries: {len(test)} test triples, tail and head)")
     print(f"| {'method':<48} | Hits@1 | Hits@3 | Hits@10 |  MRR  |")
     print(f"|{'-' * 50}|--------|--------|---------|-------|")
-    print(f"| {'hopper (this run)':<48} | {fmt(ours['hits1'])}  | {fmt(ours['hits3'])}  | "
-          f"{fmt(ours['hits10'])}   | {fmt(ours['mrr'])} |")
-    for d in ("tail", "head"):
-        m = ranking_metrics(by_dir[d])
-        print(f"| {'  ' + d + ' queries only':<48} | {fmt(m['hits1'])}  | {fmt(m['hits3'])}  | "
-              f"{fmt(m['hits10'])}   | {fmt(m['mrr'])} |")
-    print(f"| {'relation-frequency baseline (this run)':<48} | {fmt(base['hits1'])}  | "
-          f"{fmt(base['hits3'])}  | {fmt(base['hits10'])}   | {fmt(base['mrr'])} |")
+    print(_row("hopper policy, beam search (this run)", ours))
+    print(_row("  tail queries (s, r, ?) only", ranking_metrics(res["tail"])))
+    print(_row("  head queries (?, r, o) only", ranking_metrics(res["head"])))
+    print(_row("  + relation-frequency back-off (unreached)", ranking_metrics(res["backoff"])))
+    print(_row("relation-frequency baseline (this run)", base))
     for name, h1, h3, h10, mrr in PUBLISHED[args.dataset]:
-        print(f"| {name:<48} | {fmt(h1)}  | {fmt(h3)}  | {fmt(h10)}   | {fmt(mrr)} |")
-    print(f"\nties: mean rank; unscored entities rank after the scored ones (mean of their places)")
-    print(f"training: {train_s / 60:.1f} min ({summary['epochs']} epochs, "
-          f"{summary['rollouts_per_second']} rollouts/s, budget {args.minutes:g} min), "
-          f"validation Hits@1 {summary['valid_hits1']:.3f} (valid answers only, unfiltered); "
-          f"evaluation {eval_s / 60:.1f} min; load {load_s:.0f} s; total "
+        print(_row(name, {"hits1": h1, "hits3": h3, "hits10": h10, "mrr": mrr}))
+    print(f"\nranks: filtered (other answers known from train+valid+test removed), ties at their "
+          f"mean place; entities the beam did not reach share the places after the reached ones; "
+          f"the beam reached {res['reached'] / max(ours['n'], 1):.1%} of the gold answers")
+    if summary is not None:
+        print(f"training: {train_s / 60:.1f} min ({summary['epochs']} epochs, "
+              f"{summary['rollouts_per_second']} rollouts/s, budget {args.minutes:g} min, "
+              f"checked after each epoch); validation Hits@1 {summary['valid_hits1']:.3f} "
+              f"({'unfiltered' if args.core_validation else 'filtered'}, "
+              f"{min(args.valid_queries, len(valid))} valid queries)")
+    print(f"evaluation {eval_s / 60:.1f} min; load {load_s:.0f} s; total "
           f"{(time.monotonic() - t_start) / 60:.1f} min")
-    print(f"settings: max_hops={max_hops} " + " ".join(f"{k}={v}" for k, v in settings.items()
-                                                       if k != "time_budget"))
+    pol = hp.info().get("policy") or {}
+    beam = args.beam or settings.get("beam")
+    print(f"settings: max_hops={max_hops} " + " ".join(
+        f"{k}={v}" for k, v in settings.items() if k not in ("time_budget", "beam")) +
+        f" beam={beam}; other training settings: hopper.train.TrainSettings defaults"
+        f"{'; policy ' + str(pol.get('version')) if pol else ''}")
     print(f"machine: {cores()} cores, {cpu_model()}, load average "
           f"{' '.join(f'{x:.1f}' for x in os.getloadavg())} (at the end)")
-    print("command: scripts/bench_completion " + " ".join(sys.argv[1:] if argv is None else argv))
+    print(f"command: scripts/bench_completion {argv_text}")
     return 0
 
 

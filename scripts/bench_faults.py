@@ -9,14 +9,17 @@ Each round, on copies of a small store of invented facts in a temporary folder:
   two-loads two overlapping loads at once: each finishes or fails clearly (exit status not 0, a
             message, no traceback) and the store has exactly the facts of the loads that finished.
 
-Usage: scripts/bench_faults [--rounds N] [--kill-after LO-HI | --kill-after spread] [--keep]
-``--kill-after`` picks the kill time uniformly in LO..HI seconds (default 1-3); ``spread``
-spreads it over the whole measured load instead, so some kills land in the write phase.
+Usage: scripts/bench_faults [--rounds N] [--kill-after LO-HI|spread|write] [--cases ...] [--keep]
+``--kill-after`` picks the kill time uniformly in LO..HI seconds (default 1-3: here that lands
+in the embedding phase, before the store is written); ``spread`` spreads it over the whole
+measured load; ``write`` waits until the load holds the store's write lock, then kills it
+0-50 ms later (the all-or-nothing test proper).
 """
 from __future__ import annotations
 
 import argparse
 import csv
+import fcntl
 import json
 import os
 import random
@@ -80,6 +83,21 @@ def facts(store: Path) -> int:
     return json.loads(p.stdout)["facts"]
 
 
+def writer_holds(store: Path) -> bool:
+    """True while some process holds the store's write lock (hopper's flock beside the store)."""
+    try:
+        fd = os.open(str(store) + ".lock", os.O_RDONLY)
+    except OSError:
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        return False
+    except BlockingIOError:
+        return True
+    finally:
+        os.close(fd)  # closing drops our probe lock at once
+
+
 def clear_failure(p: subprocess.CompletedProcess) -> bool:
     return p.returncode != 0 and p.stderr.strip() != "" and "Traceback" not in p.stderr
 
@@ -113,20 +131,30 @@ def case_asks(store: Path, r: int) -> str | None:
 
 
 def case_kill(store: Path, big: Path, before: int, window, full_time: list) -> tuple[str | None, str]:
-    if window == "spread":
-        lo, hi = 0.5, max(1.0, full_time[0] if full_time else 30.0)
-    else:
-        lo, hi = window
-    after = random.uniform(lo, hi)
     proc = subprocess.Popen([str(HOPPER), "load", str(big), "--store", str(store)],
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env())
+    t0 = time.monotonic()
+    if window == "write":
+        after = None
+        while proc.poll() is None and time.monotonic() - t0 < 600:
+            if writer_holds(store):
+                time.sleep(random.uniform(0, 0.05))
+                after = time.monotonic() - t0
+                break
+            time.sleep(0.005)
+    else:
+        lo, hi = (0.5, max(1.0, full_time[0] if full_time else 30.0)) if window == "spread" else window
+        after = random.uniform(lo, hi)
     try:
-        proc.wait(timeout=after)
+        proc.wait(timeout=max(0.0, t0 + after - time.monotonic()) if after is not None else 0)
         landed = "finished before the kill"
     except subprocess.TimeoutExpired:
         os.kill(proc.pid, signal.SIGKILL)
         proc.wait()
-        landed = "killed"
+        landed = "killed" + (" in the write phase" if window == "write" else "")
+        if Path(str(store) + ".wal").exists():
+            landed += ", WAL left"
+    after = after if after is not None else time.monotonic() - t0
     n = facts(store)
     complete = before + 3000
     if n not in (before, complete):
@@ -167,13 +195,13 @@ def case_two_loads(store: Path, a: Path, b: Path, before: int, sizes: dict) -> t
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rounds", type=int, default=10)
-    ap.add_argument("--kill-after", default="1-3", metavar="LO-HI|spread")
+    ap.add_argument("--kill-after", default="1-3", metavar="LO-HI|spread|write")
     ap.add_argument("--cases", default="asks,kill,two-loads")
     ap.add_argument("--keep", action="store_true", help="keep the temporary folder")
     ap.add_argument("--seed", type=int, default=None)
     args = ap.parse_args()
     random.seed(args.seed)
-    window = "spread" if args.kill_after == "spread" else tuple(map(float, args.kill_after.split("-")))
+    window = args.kill_after if args.kill_after in ("spread", "write") else tuple(map(float, args.kill_after.split("-")))
     cases = args.cases.split(",")
     if not HOPPER.exists():
         print(f"{HOPPER} is missing: run scripts/install", file=sys.stderr)
