@@ -553,7 +553,7 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
         _write(store, stage, report, identity, new_items, embed_missing, known_vectors)
     except BaseException:
         if created:  # the store did not exist before this command: leave no empty file behind
-            for p in (store.path, Path(str(store.path) + ".wal")):
+            for p in (store.path, *(Path(str(store.path) + x) for x in (".wal", ".gate", ".lock"))):
                 try:
                     p.unlink()
                 except OSError:

@@ -150,10 +150,10 @@ class Store:
     DuckDB reads the file header before it takes its own lock, so a connection opened while
     another process checkpoints can work from a stale header (lost rows, "Could not read enough
     bytes").  So hopper guards each connection with ``flock`` on two files beside the store:
-    a writer holds ``<store>.gate`` and then ``<store>.lock`` exclusively until it closes; a
-    reader takes ``.gate`` shared, then ``.lock`` shared, lets go of ``.gate`` at once and
-    keeps ``.lock`` until it closes.  No connection opens while a writer is open, and a waiting
-    writer (holding ``.gate``) stops new readers, so a stream of readers cannot starve writers.
+    a writer takes ``<store>.gate`` and then ``<store>.lock`` exclusively, a reader both shared;
+    each lets go of ``.gate`` once it holds ``.lock`` and keeps ``.lock`` until it closes.  No
+    connection opens while a writer is open, and a writer waiting for ``.lock`` (holding
+    ``.gate``) stops new readers, so a stream of readers cannot starve writers.
     Waits poll with jittered back-off (at most 50 ms) until the same deadline as DuckDB's lock
     (``StoreBusyError``).  DuckDB's lock errors are still retried, for other clients that ignore
     these files.  In a read-only folder without the files, hopper goes without them.
@@ -210,9 +210,8 @@ class Store:
             gate = _flock(Path(str(self.path) + ".gate"), write, deadline, self.path)
             if gate is not None:
                 data = _flock(Path(str(self.path) + ".lock"), write, deadline, self.path)
-                if not write or data is None:
-                    os.close(gate)  # readers only pass through the gate
-                    gate = None
+                os.close(gate)  # the gate only orders arrivals; .lock guards the file
+                gate = None
             # the store may have been removed or replaced while we waited
             if write:
                 self.check_file()

@@ -1,4 +1,4 @@
-"""Knowledge-graph completion benchmark (UMLS, Kinship): train a policy, report filtered Hits@k and MRR.
+"""Completion benchmark (UMLS, Kinship): train a policy, report filtered Hits@1/3/10 and MRR.
 
 The data sets (Kok & Domingos 2007, with the train/valid/test splits of the published
 results) are read from inside the pykeen wheel on PyPI, fetched with ``pip download`` into a
@@ -101,7 +101,8 @@ def read_splits(wheel: Path, dataset: str) -> dict[str, list[tuple[str, str, str
             hits = [n for n in names if f"/datasets/{folder}/{split}." in n
                     and n.rsplit("/", 1)[-1].split(".")[1] in ("txt", "tsv")]
             if len(hits) != 1:
-                raise RuntimeError(f"{wheel.name}: expected one {folder}/{split} file, found {hits}")
+                raise RuntimeError(f"{wheel.name}: expected one {folder}/{split} file, "
+                                   f"found {hits}")
             text = _decompress(hits[0], z.read(hits[0])).decode("utf-8")
             rows = []
             for line in text.splitlines():
@@ -143,7 +144,7 @@ def question_dicts(qs: dict) -> list[dict]:
     return [{"subject": s, "relation": r, "answer": sorted(a)} for (s, r), a in sorted(qs.items())]
 
 
-# -- hiding the answer fact both ways -----------------------------------------------------------------
+# -- hiding the answer fact both ways ----------------------------------------------------------
 @contextlib.contextmanager
 def hide_both_ways():
     """Hide, for a completion question (subject, R, gold), every fact that states the answer:

@@ -93,7 +93,7 @@ def test_short_training_beats_relation_frequency(umls, tmp_path):
     # Early stopping on the valid split; its questions list the answers already known from
     # train too, so the walk is rewarded for any right answer with the facts stating them hidden
     # (as in training) rather than penalised for finding a known one first.
-    known_train = {k: v for k, v in known_answers(train).items()}
+    known_train = known_answers(train)
     t0 = time.monotonic()
     hp.train(_questions(train), valid=_questions(valid, known_train), seed=0, max_hops=2,
              progress=False, epochs=12, batch_questions=8, lr=0.01, adj_cap=64,

@@ -89,7 +89,8 @@ def test_mrr_matches_scikit_learn(integer_scores):
     Q, E = 200, 30
     scores = rng.integers(0, 6, (Q, E)) if integer_scores else rng.random((Q, E))
     gold = rng.integers(0, E, Q)
-    known = [set(rng.choice(E, rng.integers(0, 5), replace=False).tolist()) | {int(g)} for g in gold]
+    known = [set(rng.choice(E, rng.integers(0, 5), replace=False).tolist()) | {int(g)}
+             for g in gold]
     ranks = {t: [filtered_rank(dict(enumerate(scores[i])), int(gold[i]), known[i], E, ties=t)
                  for i in range(Q)] for t in ("pessimistic", "mean", "optimistic")}
     y, s = _filtered_matrix(scores, gold, known)
