@@ -141,7 +141,7 @@ class Hopper:
         from dataclasses import fields
 
         from . import train as tr
-        from .policy import Policy
+        from .env import episodes
 
         _check_int("seed", seed, 0)
         _check_int("max_hops", max_hops, 1, 8)
@@ -160,7 +160,7 @@ class Hopper:
             vs = [qs[i] for i in order[:n_valid]]
             qs = [qs[i] for i in order[n_valid:]]
         graph = self._graph_now().in_memory()
-        eps = tr.episodes(graph, qs + vs, self._encode, hide_answers=True)
+        eps = episodes(graph, qs + vs, self._encode, hide_answers=True)
         train_eps = eps[:len(qs)]
         valid_eps = [e for e in eps[len(qs):] if e.starts and e.gold]
         policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log)

@@ -4,13 +4,12 @@ from __future__ import annotations
 import datetime as _dt
 import html
 import json
-import os
 import re
-import tempfile
 import unicodedata
 from pathlib import Path
 
 from .errors import InputError
+from .files import write_atomic
 from .store import Store, first
 
 MIN_PREFIX = 6  # characters of a run id that may stand for the whole id
@@ -477,18 +476,7 @@ def write_html(run: dict, path) -> str:
     if target.is_dir():
         raise InputError("is a folder; give a file name for the HTML page", file=str(target), field="--html")
     page = render_html(run)
-    fd, tmp = tempfile.mkstemp(prefix=".hopper-audit-", suffix=".html.tmp", dir=parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(page)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    write_atomic(target, page.encode("utf-8"))
     return str(target)
 
 

@@ -75,20 +75,7 @@ def cache_dir() -> pathlib.Path:
     return pathlib.Path.home() / ".cache" / "hopper"
 
 
-def _write_atomic(path: pathlib.Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+from .files import write_atomic as _write_atomic  # noqa: E402
 
 
 _identity_memo: dict[tuple, str] = {}

@@ -508,10 +508,11 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
         if con is not None:
             hashes = stage.sql("SELECT content_hash FROM valid").to_arrow_table()
             con.register("incoming", hashes)
+            # found, ents and rels are read by name in the SQL below (replacement scans)
             found = con.sql("SELECT content_hash FROM facts JOIN incoming USING (content_hash)"
-                            ).to_arrow_table()
-            ents = con.sql("SELECT name FROM entities").to_arrow_table()
-            rels = con.sql("SELECT name FROM relations").to_arrow_table()
+                            ).to_arrow_table()  # noqa: F841
+            ents = con.sql("SELECT name FROM entities").to_arrow_table()  # noqa: F841
+            rels = con.sql("SELECT name FROM relations").to_arrow_table()  # noqa: F841
             con.unregister("incoming")
             stage.execute("INSERT INTO have_hash SELECT * FROM found")
             stage.execute("INSERT INTO have_entity SELECT * FROM ents")

@@ -19,7 +19,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from . import policy as pol
-from .env import Episode, Graph, Walker, candidates, episodes, hidden_facts, pad_candidates  # noqa: F401
+from .env import Episode, Graph, Walker, candidates, pad_candidates
 from .errors import InputError
 
 
