@@ -216,19 +216,25 @@ def _patched(changes):
 
 # -- evaluation ------------------------------------------------------------------------------------
 def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None = None,
-                 both: bool = True, beam: int | None = None) -> dict:
+                 both: bool = True, beam: int | None = None, hide: dict | None = None) -> dict:
     """Filtered rank of every test triple's answer (each direction a query), from beam scores.
 
     Each distinct (start, relation) query is searched once; its scores rank each of its gold
     answers, with the other known answers (train + valid + test) filtered out.  Returns ranks
     for "policy" (beam scores only), for "backoff" (entities the beam did not reach, and ties,
     ordered by ``prior``: {relation: {entity: count}}), per direction, and how many gold
-    answers the beam reached at all."""
+    answers the beam reached at all.
+
+    With ``hide`` ({(start, relation): {answers known from train}}) the facts stating those
+    known answers are hidden from the search, as they were in training (see search_hiding)."""
     qs = queries(test, both)
     keys = sorted(qs)
-    with _beam_width(beam):
-        docs = hp.ask_many([{"subject": s, "relation": r} for s, r in keys],
-                           top=min(1000, len(entities) + 1), record=False)
+    if hide is not None:
+        docs = search_hiding(hp, keys, hide, beam)
+    else:
+        with _beam_width(beam):
+            docs = hp.ask_many([{"subject": s, "relation": r} for s, r in keys],
+                               top=min(1000, len(entities) + 1), record=False)
     ents = set(entities)
     out = {"policy": [], "backoff": [], "tail": [], "head": [], "reached": 0}
     for (s, r), doc in zip(keys, docs):
@@ -244,6 +250,26 @@ def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None 
             out["backoff"].append(filtered_rank(mixed, g, true, len(entities)))
             out["reached"] += g in scores
     return out
+
+
+def search_hiding(hp, keys, hide: dict, beam: int | None = None) -> list[dict]:
+    """Beam search (hopper.search) for each (start, relation) query with the facts that state
+    its train-known answers hidden, both ways: the walk meets the graph as it did in training,
+    where those facts were always hidden.  Uses only train facts, no test answers."""
+    from hopper import env
+    from hopper.questions import make_question
+    from hopper.search import beam_search
+
+    graph = hp._graph_now()
+    policy = hp._policy()
+    width = int(beam or policy.settings.get("beam", 16))
+    qs = [make_question({"subject": s, "relation": r, "answer": sorted(hide.get((s, r), ())) or
+                         ["(none)"]}) for s, r in keys]
+    with hide_both_ways():
+        eps = env.episodes(graph, qs, hp._encode, hide_answers=True)
+    names = graph.entity_names
+    return [{"ranked": [{"answer": names[e], "score": float(sc)} for e, sc in
+                        beam_search(graph, policy, ep, beam=width).ranked]} for ep in eps]
 
 
 @contextlib.contextmanager
@@ -326,6 +352,9 @@ def main(argv=None) -> int:
                     help="validation queries used for early stopping (a sample)")
     ap.add_argument("--core-validation", action="store_true",
                     help="early-stop on core's unfiltered validation instead of filtered")
+    ap.add_argument("--hide-known", action="store_true",
+                    help="at test time hide the facts stating a query's train answers, as in "
+                         "training (filtered metrics drop those answers anyway)")
     ap.add_argument("--eval-only", action="store_true",
                     help="evaluate the store's active policy without training")
     args = ap.parse_args(argv)
@@ -381,7 +410,8 @@ def main(argv=None) -> int:
         train_s = time.monotonic() - t0
     t0 = time.monotonic()
     prior = relation_prior(train)
-    res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam)
+    res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam,
+                       hide=known_answers(train, inverse=inverse) if args.hide_known else None)
     eval_s = time.monotonic() - t0
     ours = ranking_metrics(res["policy"])
     base = ranking_metrics(frequency_ranks(train, test, known, entities))
@@ -390,7 +420,8 @@ def main(argv=None) -> int:
           f"({ours['n']} queries: {len(test)} test triples, tail and head)")
     print(f"| {'method':<48} | Hits@1 | Hits@3 | Hits@10 |  MRR  |")
     print(f"|{'-' * 50}|--------|--------|---------|-------|")
-    print(_row("hopper policy, beam search (this run)", ours))
+    print(_row("hopper policy, beam search (this run)" +
+               (", known hidden" if args.hide_known else ""), ours))
     print(_row("  tail queries (s, r, ?) only", ranking_metrics(res["tail"])))
     print(_row("  head queries (?, r, o) only", ranking_metrics(res["head"])))
     print(_row("  + relation-frequency back-off (unreached)", ranking_metrics(res["backoff"])))
