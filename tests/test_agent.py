@@ -73,3 +73,23 @@ def test_same_seed_gives_the_same_policy(trained_demo):
     assert set(a.params) == set(b.params)
     for k in a.params:
         assert np.array_equal(a.params[k], b.params[k]), k
+
+
+def test_ask_in_a_fresh_process_imports_no_torch(trained_demo):
+    """The hot path: a fresh `hopper ask` answers with the numpy policy and the ONNX encoder."""
+    import json
+    import subprocess
+    import sys
+
+    hp, _ = trained_demo
+    code = ("import sys, io, contextlib, json\n"
+            "from hopper.cli import main\n"
+            "out = io.StringIO()\n"
+            "with contextlib.redirect_stdout(out):\n"
+            f"    rc = main(['ask', 'Who makes part FX-6795?', '--store', {str(hp.path)!r}, '--json'])\n"
+            "heavy = [m for m in ('torch', 'sentence_transformers', 'transformers', 'sklearn') if m in sys.modules]\n"
+            "print(json.dumps({'rc': rc, 'heavy': heavy, 'doc': json.loads(out.getvalue())}))\n")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    got = json.loads(res.stdout.strip().splitlines()[-1])
+    assert got["rc"] == 0 and got["heavy"] == [], got["heavy"]
+    assert got["doc"]["fetches"] and got["doc"]["policy_version"] is not None
