@@ -29,7 +29,7 @@ class TrainSettings:
 
     max_hops: int = 4
     hidden: int = 64
-    rollouts: int = 8           # K walks per question, for the leave-one-out baseline
+    rollouts: int = 12          # K walks per question, for the leave-one-out baseline
     batch_questions: int = 16
     epochs: int = 30
     lr: float = 1e-2
@@ -37,7 +37,7 @@ class TrainSettings:
     action_dropout: float = 0.3  # chance each action (STOP too) is hidden from the sampler
     fetch_cost: float = 0.01    # reward lost per fetch: prefer short paths that still answer
     type_reward: float = 0.3    # shaping: credit for a wrong answer of the right kind (x overlap),
-    shaping_epochs: int = 6     # fading to nothing over this many epochs (decoys share kinds)
+    shaping_epochs: int = 10    # fading to nothing over this many epochs (decoys share kinds)
     scale_advantage: bool = True  # weigh questions equally (see reinforce_loss)
     grad_clip: float = 1.0
     patience: int = 8           # epochs without a better validation score before stopping
