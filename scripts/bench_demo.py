@@ -4,27 +4,17 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import platform
 import sys
 import tempfile
 import time
 from pathlib import Path
 
 import hopper
+from bench_completion import cpu_model  # scripts/ is on the path when run as a script
 from hopper.audit import format_eval
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "factstores" / "supply"
-
-
-def cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def main() -> int:
