@@ -85,9 +85,12 @@ class Hopper:
     def _graph_now(self):
         from .env import Graph
 
+        if self._graph is None:  # a fresh process: one connection reads version and arrays
+            self._graph = Graph.from_store(self.store)
+            return self._graph
         with self.store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
-        if self._graph is None or self._graph.facts_version != version:
+        if self._graph.facts_version != version:
             self._graph = Graph.from_store(self.store)
         return self._graph
 
