@@ -11,12 +11,14 @@ policy only needs a *name* (a row of its learned relation vectors) for the inver
 relation.  ``--inverse anchor`` (default) registers those names with one self-loop fact per
 inverse relation on a separate anchor entity that touches nothing else (and is left out of
 every ranking); ``--inverse facts`` adds an inverse twin (o, r_inverse, s) for every train
-triple instead, as MINERVA-style systems do (this doubles every entity's degree).
+triple instead (this doubles every entity's degree).
 
-During training the fact that states a question's answer is hidden (hopper.train.hidden_facts);
-for head queries and for inverse twins it is hidden in both directions here (see
-``hide_both_ways``), otherwise the walk could read the answer off the reverse of the hidden
-fact.
+Two things are patched in for the run (recommended for the core; see each function):
+``hide_both_ways``: during training the fact stating a question's answer is hidden
+(hopper.env.hidden_facts), and for head queries and inverse twins it must be hidden in both
+directions, or the walk reads the answer off the reverse of the hidden fact.
+``filtered_validation``: early stopping on filtered Hits@1 / MRR (train + valid answers
+filtered), as the test metric is; ``--core-validation`` turns it off.
 """
 from __future__ import annotations
 
