@@ -378,6 +378,11 @@ def mask_names(text: str, names: list[str]) -> str:
     return text
 
 
+def question_words(text: str) -> tuple:
+    """The words of a (masked) question, lower-cased, without the name placeholder."""
+    return tuple(w for w in re.findall(r"[^\W\d_]+", text.lower()) if w != MASK.lower())
+
+
 @dataclass
 class Episode:
     """A question resolved against the graph: where walks start and what counts as right."""
@@ -390,6 +395,8 @@ class Episode:
     hops: int | None = None
     qrel: int = -1            # the asked relation (graph index) for completion questions
     prerank: dict = field(default_factory=dict)
+    words: tuple = ()         # the masked question's words (policy.word_bag reads their vectors)
+    word_vecs: np.ndarray | None = None  # [len(words), D]
 
 
 def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
@@ -422,13 +429,19 @@ def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) 
     same = [m == q.text for m, q in zip(masked, questions)]
     todo = [m for m, sm in zip(masked, same) if not sm]
     mvecs = iter(encode(todo)) if todo else iter(())
+    words = [question_words(m) for m in masked]
+    vocab = sorted({w for ws in words for w in ws})
+    wvec = dict(zip(vocab, encode(vocab))) if vocab else {}
+    dim = raw.shape[1] if len(raw) else 0
     out = []
-    for q, v, st, sm in zip(questions, raw, starts, same):
+    for q, v, st, sm, ws in zip(questions, raw, starts, same, words):
         qstate = np.asarray(v if sm else next(mvecs), np.float32)
         gold = frozenset(e for e in (graph.entity_index(a) for a in q.answers) if e is not None)
         hidden = hidden_facts(graph, st[0], q.relation, gold) if (
             hide_answers and q.is_completion and st) else frozenset()
         qrel = graph.relation_names.index(q.relation) if q.is_completion and \
             q.relation in graph.relation_names else -1
-        out.append(Episode(np.asarray(v, np.float32), qstate, st, gold, hidden, q.hops, qrel))
+        wv = np.array([wvec[w] for w in ws], np.float32).reshape(len(ws), dim)
+        out.append(Episode(np.asarray(v, np.float32), qstate, st, gold, hidden, q.hops, qrel,
+                           words=ws, word_vecs=wv))
     return out

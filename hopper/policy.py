@@ -5,9 +5,12 @@ runs it on torch tensors (for gradients) and ``ask`` runs the very same function
 arrays (no torch import on the hot path).  ``tests/test_policy.py`` checks both give the same
 probabilities.
 
-    question   x = (q - q_mean) q_proj      (q: the question with names masked, whitened by PCA
+    question   x = [(q - q_mean) q_proj,    (q: the question with names masked, whitened by PCA
                                             on the training questions, so wordings that differ
                                             in a few words are far apart; fixed, not trained)
+                    (b - w_mean) w_scale]   (b: soft counts of the training questions' words in
+                                            it; a word never seen in training counts for its
+                                            nearest training words, see ``word_bag``)
     state      z_t = tanh(x W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t])  (e_t: where it stands;
                                                                            r_q: the relation asked,
                                                                            for completion questions)
@@ -28,15 +31,19 @@ NEG = -1e9  # the score of a padded (absent) candidate
 
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
     "q_mean": ("D",), "q_proj": ("D", "K"),
-    "W_q": ("K", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
+    "w_vocab": ("V", "D"), "w_mean": ("V",), "w_scale": ("V",),
+    "W_q": ("X", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
-    "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "K"), "w_g": (N_STOP,), "b_stop": (1,),
+    "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "X"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
 }
 
 
 TEXT_INPUTS = ("W_v", "W_u", "W_e")  # the weights that read unit-length sentence vectors
-FIXED = ("q_mean", "q_proj")           # set from the training questions, not by gradient
+FIXED = ("q_mean", "q_proj", "w_vocab", "w_mean", "w_scale")  # set from the training questions
+WORD_TAU = 0.05   # temperature of a question word's soft match to the training words
+WORD_NULL = 0.5   # a word matching no training word better than this cosine counts for none
+VIEWS = ("sentence", "words", "both")  # what of the question the policy reads
 
 
 class NumpyOps:
@@ -105,18 +112,75 @@ def question_basis(qstates: np.ndarray, k: int = 64, seed: int = 0):
     return pca.mean_.astype(np.float32), proj.astype(np.float32)
 
 
+def word_bag(P: dict, word_vecs) -> np.ndarray:
+    """Soft counts of the training words (rows of ``w_vocab``) in a question: [V].
+
+    Each question word is shared among the training words by softmax(cosine / WORD_TAU), with
+    a "none" option at cosine WORD_NULL: a training word counts 1 for itself, and a word never
+    seen in training ("nation") counts mostly for its nearest training word ("country").
+    """
+    vocab = P["w_vocab"]
+    if vocab.shape[0] == 0 or word_vecs is None or len(word_vecs) == 0:
+        return np.zeros(vocab.shape[0], np.float32)
+    logits = np.concatenate([np.asarray(word_vecs, np.float32) @ vocab.T,
+                             np.full((len(word_vecs), 1), WORD_NULL, np.float32)], 1) / WORD_TAU
+    logits -= logits.max(1, keepdims=True)
+    w = np.exp(logits)
+    w /= w.sum(1, keepdims=True)
+    return w[:, :-1].sum(0).astype(np.float32)
+
+
+def word_basis(word_lists: list, word_vecs: list, max_words: int = 512, min_count: int = 2):
+    """The training vocabulary and the scaling of its soft counts.
+
+    ``word_lists`` are the training questions' words, ``word_vecs`` their vectors.  Returns
+    (w_vocab [V, D], w_mean [V], w_scale [V], the words).
+    """
+    from collections import Counter
+
+    counts = Counter(w for ws in word_lists for w in set(ws))
+    words = sorted((w for w, c in counts.items() if c >= min_count),
+                   key=lambda w: (-counts[w], w))[:max_words]
+    vec = {}
+    for ws, vs in zip(word_lists, word_vecs):
+        for w, v in zip(ws, vs):
+            vec.setdefault(w, v)
+    dim = next(iter(vec.values())).shape[0] if vec else 0
+    vocab = np.array([vec[w] for w in words], np.float32).reshape(len(words), dim)
+    P = {"w_vocab": vocab}
+    bags = np.stack([word_bag(P, vs) for vs in word_vecs]) if word_vecs else np.zeros((0, len(words)))
+    mean = bags.mean(0) if len(bags) else np.zeros(len(words))
+    scale = 1.0 / (bags.std(0) + 0.1) if len(bags) else np.ones(len(words))
+    return vocab, mean.astype(np.float32), scale.astype(np.float32), words
+
+
+def question_features(P: dict, qstate, word_vecs) -> np.ndarray:
+    """x: what the policy reads of the question (fixed arithmetic, numpy, not trained)."""
+    qstate = np.asarray(qstate, np.float32)
+    x_s = (qstate - P["q_mean"]) @ P["q_proj"]
+    x_w = (word_bag(P, word_vecs) - P["w_mean"]) * P["w_scale"] if "w_vocab" in P else \
+        np.zeros(0, np.float32)
+    return np.concatenate([x_s, x_w]).astype(np.float32)
+
+
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int,
-                basis=None) -> dict:
+                basis=None, words=None) -> dict:
     """Small random weights (scaled by fan-in), as float32 numpy arrays.
 
-    ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they are.
+    ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they
+    are.  ``words`` is (w_vocab, w_mean, w_scale) from ``word_basis``; without it no words.
     """
     rng = np.random.default_rng(seed)
     q_mean, q_proj = basis if basis is not None else (np.zeros(dim, np.float32),
                                                       np.eye(dim, dtype=np.float32))
+    w_vocab, w_mean, w_scale = words if words is not None else (
+        np.zeros((0, dim), np.float32), np.zeros(0, np.float32), np.zeros(0, np.float32))
     sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
-             "R1": n_relations + 1, "K": q_proj.shape[1]}
-    params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32)}
+             "R1": n_relations + 1, "K": q_proj.shape[1], "V": w_vocab.shape[0],
+             "X": q_proj.shape[1] + w_vocab.shape[0]}
+    params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32),
+              "w_vocab": np.asarray(w_vocab, np.float32), "w_mean": np.asarray(w_mean, np.float32),
+              "w_scale": np.asarray(w_scale, np.float32)}
     for name, shape in PARAM_SHAPES.items():
         if name in FIXED:
             continue
@@ -164,14 +228,13 @@ def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot)
     return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"])
 
 
-def scores(P: dict, ops, q, h, here, qrel, hop, cand, feats, mask, stop_feats):
+def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
-    q [B, D], h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
+    x [B, X] (from ``question_features``), h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
     (row of ``Q``: the asked relation, the last row for questions in words), hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
     (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
     """
-    x = (q - P["q_mean"]) @ P["q_proj"]
     z = ops.tanh(x @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["Q"][ops.asarray(qrel)]
                  + P["b_hop"][ops.asarray(hop)])
     s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
@@ -246,6 +309,10 @@ class Policy:
             if dtype != "float32-le":
                 raise ValueError(f"policy tensor {name}: unknown dtype {dtype}")
             params[name] = np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+        if "w_vocab" not in params and "q_proj" in params:  # made before policies read words
+            dim = params["q_proj"].shape[0]
+            params |= {"w_vocab": np.zeros((0, dim), np.float32),
+                       "w_mean": np.zeros(0, np.float32), "w_scale": np.zeros(0, np.float32)}
         missing = set(PARAM_SHAPES) - set(params)
         if missing:
             from .errors import InputError
@@ -254,7 +321,7 @@ class Policy:
         return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
 
 
-def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict, qrel=None):
+def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None):
     """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H]).
 
     ``batch`` comes from ``env.pad_candidates``; ``relmap`` maps the graph's relations to the
@@ -276,6 +343,6 @@ def step(P: dict, ops, graph, relmap: np.ndarray, q, h, hop, batch: dict, qrel=N
     n_q = P["Q"].shape[0] - 1
     qrel = np.full(B, -1) if qrel is None else np.asarray(qrel, np.int64)
     qrel = np.where((qrel >= 0) & (qrel < n_q), qrel, n_q)
-    logp = scores(P, ops, q, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
+    logp = scores(P, ops, x, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]))
     return logp, cand

@@ -84,6 +84,7 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
     relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
     linked = frozenset(starts)
     H = P["W_h"].shape[0]
+    x = pol.question_features(P, ep.qstate, ep.word_vecs)
     live = [_Beam(Walker(s, (), (s,)), np.zeros(H, np.float32), -math.log(len(starts)))
             for s in starts]
     finished: list[_Beam] = []
@@ -96,7 +97,7 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
                             cap=cap) for b in live]
         batch = pad_candidates(cands)
         n = len(live)
-        logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(ep.qstate[None, :], n, 0),
+        logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(x[None, :], n, 0),
                                np.stack([b.h for b in live]), np.full(n, t), batch,
                                qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1))
         nxt: list[_Beam] = []

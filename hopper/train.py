@@ -49,6 +49,7 @@ class TrainSettings:
     adj_cap: int = 32           # touching facts offered per hop (hubs are pre-ranked and cut)
     seed: int = 0
     time_budget: float = 0.0    # seconds; 0 = no limit
+    question_view: str = "both"  # the policy reads the question's sentence vector, its words, or both
 
     def validate(self) -> None:
         checks = {
@@ -59,6 +60,7 @@ class TrainSettings:
             "type_reward": 0 <= self.type_reward < 1, "shaping_epochs": self.shaping_epochs >= 1,
             "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
+            "question_view": self.question_view in pol.VIEWS,
         }
         for name, ok in checks.items():
             if not ok:
@@ -84,8 +86,11 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
             gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
-            type_reward: float = 0.0):
+            type_reward: float = 0.0, qx: dict | None = None):
     """Sample K walks per episode with the torch policy ``P``.
+
+    ``qx`` maps id(episode) to its question features (``policy.question_features``);
+    without it they are computed from ``P``'s fixed arrays.
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
     final entity [B], fetch counts [B], last hop [B]), with B = len(eps) * K.
@@ -95,7 +100,10 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     walkers = [Walker(ep.starts[k % len(ep.starts)], (), (ep.starts[k % len(ep.starts)],))
                for ep in eps for k in range(K)]
     owner = [ep for ep in eps for _ in range(K)]
-    q = ops.asarray(np.stack([ep.qstate for ep in owner]))
+    if qx is None:
+        fixed = {k: P[k].detach().numpy() for k in pol.FIXED}
+        qx = {id(ep): pol.question_features(fixed, ep.qstate, ep.word_vecs) for ep in eps}
+    q = ops.asarray(np.stack([qx[id(ep)] for ep in owner]))
     H = P["W_h"].shape[0]
     h = torch.zeros(B, H)
     alive = np.ones(B, bool)
@@ -298,14 +306,23 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
     gen = torch.Generator().manual_seed(settings.seed)
     rng = np.random.default_rng(settings.seed)
     n_rel = len(graph.relation_names)
-    basis = pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
-    init = pol.init_params(graph.fact_vecs.shape[1], settings.hidden, n_rel, settings.max_hops,
-                           settings.seed, basis=basis)
+    dim = graph.fact_vecs.shape[1]
+    basis = (pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
+             if settings.question_view != "words" else
+             (np.zeros(dim, np.float32), np.zeros((dim, 0), np.float32)))
+    words, vocabulary = None, []
+    if settings.question_view != "sentence":
+        *words, vocabulary = pol.word_basis([e.words for e in train_eps],
+                                            [e.word_vecs for e in train_eps])
+    init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
+                           basis=basis, words=words)
+    qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs) for e in train_eps}
     P = {k: torch.tensor(v, requires_grad=k not in pol.FIXED) for k, v in init.items()}
     opt = torch.optim.Adam([v for k, v in P.items() if k not in pol.FIXED], lr=settings.lr)
     ops = pol.TorchOps()
     relmap = np.arange(n_rel)
-    base_settings = asdict(settings) | {"relations": list(graph.relation_names)}
+    base_settings = asdict(settings) | {"relations": list(graph.relation_names),
+                                        "vocabulary": vocabulary}
     curve = []
     best = (-1.0, -1.0)
     best_params = _numpy_params(P)
@@ -326,7 +343,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
-                type_reward=shaping)
+                type_reward=shaping, qx=qx)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)

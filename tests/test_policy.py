@@ -62,3 +62,32 @@ def test_policy_round_trips_through_the_store_without_pickle(tmp_path):
 def test_unknown_relations_share_one_row():
     slots = pol.relation_slot(np.array([0, 1, -1, 7]), np.array([0, 1, 0, 1]), n_relations=3)
     assert list(slots) == [0, 3, 6, 6]
+
+
+def test_word_bag_counts_training_words_and_shares_unseen_ones():
+    # Invented unit vectors (common practice): a training word counts 1 for itself; a word
+    # never seen in training counts for the training word it is nearest to; a word near none
+    # of them (cosine below WORD_NULL) counts for nothing.
+    e = np.eye(4, dtype=np.float32)
+    P = {"w_vocab": e[:2]}
+    assert np.allclose(pol.word_bag(P, e[:1]), [1.0, 0.0], atol=1e-6)
+    near = (0.9 * e[1] + 0.1 * e[2])
+    near /= np.linalg.norm(near)
+    assert np.allclose(pol.word_bag(P, near[None]), [0.0, 1.0], atol=1e-3)
+    assert pol.word_bag(P, e[3:4]).sum() < 1e-3
+    assert np.allclose(pol.word_bag(P, np.stack([e[0], e[0], e[1]])), [2.0, 1.0], atol=1e-6)
+
+
+def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
+    e = np.eye(5, dtype=np.float32)
+    lists = [("who", "makes"), ("who", "certified"), ("where", "makes")]
+    vecs = [np.stack([e[0], e[1]]), np.stack([e[0], e[2]]), np.stack([e[3], e[1]])]
+    vocab, mean, scale, words = pol.word_basis(lists, vecs)
+    assert words == ["makes", "who"]           # by count, then alphabetically
+    assert np.allclose(vocab, np.stack([e[1], e[0]]))
+    assert np.allclose(mean, [2 / 3, 2 / 3], atol=1e-6)
+    x = pol.question_features({"q_mean": np.zeros(5, np.float32),
+                               "q_proj": np.zeros((5, 0), np.float32),
+                               "w_vocab": vocab, "w_mean": mean, "w_scale": scale},
+                              np.zeros(5, np.float32), vecs[0])
+    assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-5)

@@ -32,7 +32,8 @@ def _exact_expected_reward(P, graph, ep, T, cost):
     """J = sum over every fetch sequence of P(sequence) * R(sequence), differentiable in P."""
     ops = pol.TorchOps()
     relmap = np.arange(len(graph.relation_names))
-    q = ops.asarray(ep.qstate[None, :])
+    fixed = {k: P[k].detach().numpy() for k in pol.FIXED}
+    q = ops.asarray(pol.question_features(fixed, ep.qstate, ep.word_vecs)[None, :])
 
     def walk(walker, h, t, logp, fetched):
         reward = lambda: float(walker.entity in ep.gold) - cost * fetched  # noqa: E731
@@ -67,11 +68,13 @@ def test_reinforce_gradient_matches_exact_gradient(tiny_graph):
     q /= np.linalg.norm(q)
     ep = tr.Episode(q, q, [g.entity_index("a")], frozenset([g.entity_index("c")]))
     init = pol.init_params(16, 8, len(g.relation_names), T, seed=3)
-    P = {k: torch.tensor(v, dtype=torch.float64, requires_grad=True) for k, v in init.items()}
+    P = {k: torch.tensor(v, dtype=torch.float64, requires_grad=k not in pol.FIXED)
+         for k, v in init.items()}
+    learned = [v for k, v in P.items() if k not in pol.FIXED]
     torch.set_default_dtype(torch.float64)
     try:
         J = _exact_expected_reward(P, g, ep, T, cost)
-        exact = torch.autograd.grad(J, list(P.values()))
+        exact = torch.autograd.grad(J, learned)
         exact = torch.cat([e.reshape(-1) for e in exact]).numpy()
         assert -cost * T <= float(J.detach()) <= 1.0
         ops = pol.TorchOps()
@@ -83,10 +86,10 @@ def test_reinforce_gradient_matches_exact_gradient(tiny_graph):
             logp, ent, correct, active, final, fetches, last = out
             rewards = tr.episode_rewards(correct, active, fetches, last, cost)
             loss = tr.reinforce_loss(logp, ent, rewards, active, K, entropy_weight=0.0)
-            grads = torch.autograd.grad(-loss, list(P.values()), allow_unused=True)
+            grads = torch.autograd.grad(-loss, learned, allow_unused=True)
             estimates.append(torch.cat([
                 (gr if gr is not None else torch.zeros_like(p)).reshape(-1)
-                for gr, p in zip(grads, P.values())]).numpy())
+                for gr, p in zip(grads, learned)]).numpy())
     finally:
         torch.set_default_dtype(torch.float32)
     est = np.array(estimates)
