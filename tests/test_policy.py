@@ -70,12 +70,12 @@ def test_word_bag_counts_training_words_and_shares_unseen_ones():
     # of them (cosine below WORD_NULL) counts for nothing.
     e = np.eye(4, dtype=np.float32)
     P = {"w_vocab": e[:2]}
-    assert np.allclose(pol.word_bag(P, e[:1]), [1.0, 0.0], atol=1e-6)
+    assert np.allclose(pol.word_bag(P, e[:1]), [1.0, 0.0], atol=1e-4)  # exp(-10) goes to "none"
     near = (0.9 * e[1] + 0.1 * e[2])
     near /= np.linalg.norm(near)
     assert np.allclose(pol.word_bag(P, near[None]), [0.0, 1.0], atol=1e-3)
     assert pol.word_bag(P, e[3:4]).sum() < 1e-3
-    assert np.allclose(pol.word_bag(P, np.stack([e[0], e[0], e[1]])), [2.0, 1.0], atol=1e-6)
+    assert np.allclose(pol.word_bag(P, np.stack([e[0], e[0], e[1]])), [2.0, 1.0], atol=1e-3)
 
 
 def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
@@ -85,9 +85,9 @@ def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
     vocab, mean, scale, words = pol.word_basis(lists, vecs)
     assert words == ["makes", "who"]           # by count, then alphabetically
     assert np.allclose(vocab, np.stack([e[1], e[0]]))
-    assert np.allclose(mean, [2 / 3, 2 / 3], atol=1e-6)
+    assert np.allclose(mean, [2 / 3, 2 / 3], atol=1e-4)
     x = pol.question_features({"q_mean": np.zeros(5, np.float32),
                                "q_proj": np.zeros((5, 0), np.float32),
                                "w_vocab": vocab, "w_mean": mean, "w_scale": scale},
                               np.zeros(5, np.float32), vecs[0])
-    assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-5)
+    assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-3)
