@@ -6,6 +6,7 @@ import csv
 import filecmp
 import json
 import random
+import re
 import subprocess
 import sys
 from collections import Counter, defaultdict
@@ -143,6 +144,19 @@ def test_new_wordings_only_in_test(splits):
     for q in test:
         if q["wording"] == "new":
             assert q["question"].replace(q["start"], "{}") not in seen_prefixes
+
+
+def test_new_wordings_use_words_no_training_question_uses(splits):
+    # A "new" wording is not a reshuffle of training words: each new-wording test question
+    # has at least two words (names aside) that no training question contains, so answering
+    # it rests on what the sentence model knows of synonyms ("nation" for "country").
+    def words(q):
+        return set(re.findall(r"[^\W\d_]+", q["question"].replace(q["start"], " ").lower()))
+
+    trained = set().union(*(words(q) for q in splits["train"]))
+    for q in splits["test"]:
+        if q["wording"] == "new":
+            assert len(words(q) - trained) >= 2, q["question"]
 
 
 def test_regeneration_is_byte_identical(tmp_path):
