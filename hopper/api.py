@@ -323,8 +323,14 @@ class Hopper:
         ax.grid(alpha=0.3)
         ax.legend(loc="lower right")
         fig.tight_layout()
+        import io
+
+        from .files import write_atomic
+
+        buf = io.BytesIO()
         try:
-            fig.savefig(out, dpi=100)
+            fig.savefig(buf, format="png", dpi=100)
+            write_atomic(out, buf.getvalue())  # renamed into place beside the store
         except OSError:
             return None
         finally:
