@@ -266,6 +266,7 @@ def main(argv=None) -> int:
     os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
     # hopper's numpy work is many small products; BLAS threads only add waiting there
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    args = None
     try:
         args = build_parser().parse_args(argv)
         if args.command == "demo":
@@ -284,7 +285,13 @@ def main(argv=None) -> int:
         print(f"hopper: {exc}", file=sys.stderr)
         return exc.exit_status
     except KeyboardInterrupt:
-        print("hopper: interrupted; the store is as it was before this command", file=sys.stderr)
+        resume = ""
+        if getattr(args, "command", None) == "train":
+            from .store import Store
+            if Store(_store_path(args)).checkpoint_path.exists():
+                resume = " (hopper train --resume with the same arguments continues the training)"
+        print(f"hopper: interrupted; the store is as it was before this command{resume}",
+              file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0
