@@ -7,9 +7,6 @@ import ast
 import csv
 import io
 import json
-import os
-import subprocess
-import sys
 from contextlib import redirect_stdout
 from pathlib import Path
 
@@ -119,7 +116,7 @@ def tree(folder: Path) -> set:
     return {str(p.relative_to(folder)) for p in folder.rglob("*")}
 
 
-def test_side_files_land_beside_what_the_user_named_and_nowhere_else(tmp_path):
+def test_side_files_land_beside_what_the_user_named_and_nowhere_else(tmp_path, monkeypatch):
     """load --skip-invalid (rejected rows CSV beside the input), train (curve PNG and checkpoint
     beside the store), ask, audit --html FILE (that file only): run from an empty working folder,
     each writes only into the folder the user named, and replaces a link planted at a side
@@ -148,14 +145,13 @@ def test_side_files_land_beside_what_the_user_named_and_nowhere_else(tmp_path):
     (pages / "page.html").symlink_to(victim)
     before = {d: tree(d) for d in (inputs, outside)}
 
-    env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1")
-    env.pop("HOPPER_STORE", None)
+    monkeypatch.chdir(work)  # relative paths would land here; nothing may
+    monkeypatch.delenv("HOPPER_STORE", raising=False)
 
     def hop(*args):
-        p = subprocess.run([sys.executable, "-m", "hopper.cli", *map(str, args)], capture_output=True,
-                           text=True, cwd=work, env=dict(env, PYTHONPATH=str(REPO)), timeout=300)
-        assert p.returncode == 0, p.stderr
-        return p.stdout
+        rc, out = run_cli(*args)
+        assert rc == 0
+        return out
 
     hop("load", facts, "--skip-invalid", "--store", store)
     hop("train", "--questions", questions, "--valid", questions, "--epochs", "1", "--store", store)
