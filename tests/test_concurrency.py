@@ -12,6 +12,7 @@ from pathlib import Path
 import pytest
 
 import hopper
+from test_crashes import catalogue, write_csv
 
 REPO = Path(__file__).resolve().parents[1]
 FACTS = [
@@ -106,28 +107,14 @@ def test_ask_waits_for_another_writer(store):
     assert info["runs"] == 1
 
 
-def _catalogue(start: int, n: int):
-    """Invented catalogue rows: part k is made by, stored in or shipped to a site."""
-    rels = ["made by", "stored in", "shipped to"]
-    return [(f"Kessel part {k:05d}", rels[k % 3], f"Harl site {k % 37:02d}") for k in range(start, start + n)]
-
-
-def _write(path: Path, rows) -> Path:
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object"])
-        w.writerows(rows)
-    return path
-
-
 def test_two_loads_at_once_both_land_and_nothing_is_lost(store):
     """Two overlapping loads started together: one waits for the other's write; the store ends
     with exactly the union of the facts (each once, each with its vector)."""
     import duckdb
 
-    a_rows, b_rows = _catalogue(0, 150), _catalogue(100, 150)  # 50 rows in both
-    a = _write(store.parent / "a.csv", a_rows)
-    b = _write(store.parent / "b.csv", b_rows)
+    a_rows, b_rows = catalogue(0, 150), catalogue(100, 150)  # 50 rows in both
+    a = write_csv(store.parent / "a.csv", a_rows)
+    b = write_csv(store.parent / "b.csv", b_rows)
     procs = [subprocess.Popen(_hopper("load", f, "--json", "--store", str(store)), stdout=subprocess.PIPE,
                               stderr=subprocess.PIPE, text=True, env=_env(), cwd=REPO) for f in (a, b)]
     reports = []
@@ -150,7 +137,7 @@ def test_two_loads_at_once_both_land_and_nothing_is_lost(store):
 def test_load_that_cannot_get_the_store_fails_clearly_and_changes_nothing(store):
     """With another process holding the store past HOPPER_LOCK_TIMEOUT, a load gives up: exit
     status 1, one line saying why and what to do, and the store has what it had."""
-    more = _write(store.parent / "more.csv", _catalogue(500, 20))
+    more = write_csv(store.parent / "more.csv", catalogue(500, 20))
     holder = subprocess.Popen([sys.executable, "-c", HOLDER, str(store), "20"], stdout=subprocess.PIPE,
                               stderr=subprocess.PIPE, text=True, env=_env())
     try:

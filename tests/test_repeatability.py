@@ -11,19 +11,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import hopper
-from test_train_resume import TINY, params, same_params, write_inputs
+from test_train_resume import TINY, make_store, params, same_params
 
 REPO = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module")
 def tiny(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("repeat")
-    facts, questions = write_inputs(folder)
-    hp = hopper.open_store(folder / "store.duckdb")
-    hp.load([facts], progress=False)
-    return hp, questions
+    return make_store(tmp_path_factory.mktemp("repeat"))
 
 
 def answers(hp, questions) -> list:

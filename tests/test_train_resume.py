@@ -50,13 +50,18 @@ def write_inputs(folder: Path) -> tuple[Path, Path]:
     return facts, questions
 
 
-@pytest.fixture(scope="module")
-def tiny(tmp_path_factory):
-    """A store of 36 invented facts with a first policy (v1) already trained."""
-    folder = tmp_path_factory.mktemp("resume")
+def make_store(folder: Path):
+    """A store of the 36 invented facts, and the question file."""
     facts, questions = write_inputs(folder)
     hp = hopper.open_store(folder / "store.duckdb")
     hp.load([facts], progress=False)
+    return hp, questions
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    """The store with a first policy (v1) already trained."""
+    hp, questions = make_store(tmp_path_factory.mktemp("resume"))
     hp.train(questions, seed=0, epochs=1, **TINY)
     return hp, questions
 
