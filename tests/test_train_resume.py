@@ -203,16 +203,15 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
         while _checkpoint_epoch(cp) < 1:
             assert proc.poll() is None, "training ended before its first checkpoint"
             assert time.monotonic() < deadline
-            time.sleep(0.02)
-        # ask while training runs: the last stored policy answers
+            time.sleep(0.005)
+        # freeze the run mid-training (so the overlap below is certain, however fast it is)
+        os.kill(proc.pid, signal.SIGSTOP)
+        assert proc.poll() is None and _checkpoint_epoch(cp) < 8, "training ended before it could be killed half-way"
+        # ask while the training run is in progress: the last stored policy answers
         ask = subprocess.run(_hopper("ask", "Who makes the Kessel part 05?", "--json", "--store", store),
                              capture_output=True, text=True, env=_env(), cwd=REPO, timeout=120)
         assert ask.returncode == 0, ask.stderr
         assert json.loads(ask.stdout)["policy_version"] == old
-        while _checkpoint_epoch(cp) < 2:
-            assert proc.poll() is None, "training ended before it could be killed half-way"
-            time.sleep(0.02)
-        assert proc.poll() is None, "training ended before it could be killed half-way"
         os.kill(proc.pid, signal.SIGKILL)
         proc.wait(timeout=30)
     finally:
