@@ -27,6 +27,46 @@ def _check_choice(name, value, choices):
         raise InputError(f"must be one of {', '.join(choices)} (got {value!r})", field=name)
 
 
+def _check_bool(name, value):
+    if not isinstance(value, (bool, np.bool_)):
+        raise InputError(f"must be True or False (got {value!r})", field=name)
+
+
+def _fingerprint(cfg, qs, vs, facts_version: int) -> dict:
+    """What a resumed training run must share with the interrupted one (see ``Hopper.train``).
+
+    The settings as they are (the time budget may change), the questions as digests.
+    """
+    import hashlib
+    from dataclasses import asdict
+
+    def digest(questions):
+        rows = [[q.text, q.answers, q.subject, q.relation] for q in questions]
+        return hashlib.sha256(json.dumps(rows, ensure_ascii=False).encode("utf-8")).hexdigest()
+
+    settings = {k: v for k, v in asdict(cfg).items() if k != "time_budget"}
+    return {"settings": settings, "questions": digest(qs), "valid": digest(vs),
+            "facts_version": int(facts_version)}
+
+
+def _use_checkpoint_vectors(checkpoint, eps: list, where) -> None:
+    """Give the episodes the very question vectors the interrupted run began with."""
+    from .policy import PARAM_SHAPES
+
+    arrays, meta = checkpoint
+    qvec, qstate = arrays.get("episodes.qvec"), arrays.get("episodes.qstate")
+    counts, wvecs = arrays.get("episodes.word_counts"), arrays.get("episodes.word_vecs")
+    if any(a is None or len(a) != len(eps) for a in (qvec, qstate, counts)) or wvecs is None or \
+            int(counts.sum()) != len(wvecs) or "vocabulary" not in meta or \
+            any(f"param.{k}" not in arrays for k in PARAM_SHAPES):
+        raise InputError("the training checkpoint is incomplete or from another version of hopper",
+                         file=str(where), hint="train without --resume to start again")
+    ends = np.cumsum(counts)
+    for e, v, q, a, b in zip(eps, qvec, qstate, ends - counts, ends):
+        e.qvec, e.qstate = np.asarray(v, np.float32), np.asarray(q, np.float32)
+        e.word_vecs = np.asarray(wvecs[a:b], np.float32)
+
+
 def _check_int(name, value, lo, hi=None):
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < lo or \
             (hi is not None and value > hi):
@@ -135,11 +175,16 @@ class Hopper:
 
     # -- training --------------------------------------------------------------------------------
     def train(self, questions, valid=None, seed: int = 0, max_hops: int = 4,
-              progress: bool | None = None, log=None, **settings) -> dict:
+              progress: bool | None = None, log=None, resume: bool = False, **settings) -> dict:
         """Train a policy by REINFORCE on question/answer pairs and store it as a new version.
 
         ``valid`` (a file or list) early-stops training and sets the abstention threshold;
         without it a tenth of ``questions`` is held out for that.  Returns a summary.
+
+        After every epoch the training state is saved beside the store
+        (``STORE.train-checkpoint.npz``); the active policy changes only when training ends.
+        ``resume=True`` continues an interrupted run from that checkpoint; it needs the same
+        questions, settings and facts, and ends with the same policy as an uninterrupted run.
         """
         from dataclasses import fields
 
@@ -148,12 +193,17 @@ class Hopper:
 
         _check_int("seed", seed, 0)
         _check_int("max_hops", max_hops, 1, 8)
+        _check_bool("resume", resume)
         known = {f.name for f in fields(tr.TrainSettings)}
         for k in settings:
             if k not in known:
                 raise InputError(f"unknown training setting (known: {', '.join(sorted(known))})", field=k)
         cfg = tr.TrainSettings(seed=seed, max_hops=max_hops, **settings)
         cfg.validate()
+        if resume and not self.store.checkpoint_path.exists():
+            self.store.require()
+            raise InputError("there is no unfinished training run to resume", file=str(self.path),
+                             field="--resume", hint="train without --resume")
         qs = self._questions(questions)
         vs = self._questions(valid) if valid is not None else None
         if vs is None:
@@ -162,22 +212,84 @@ class Hopper:
             n_valid = max(1, len(qs) // 10) if len(qs) >= 10 else 0
             vs = [qs[i] for i in order[:n_valid]]
             qs = [qs[i] for i in order[n_valid:]]
+        self.store.require()
+        with self.store.connect() as con:
+            facts_version = int(Store.get_meta(con, "facts_version", "0"))
+        fingerprint = _fingerprint(cfg, qs, vs, facts_version)
+        resume_from = self._resume_point(fingerprint) if resume else None
         graph = self._graph_now().in_memory()
+        if graph.facts_version != facts_version:  # a load landed just now
+            if resume:
+                raise InputError("facts were loaded since the run was interrupted",
+                                 file=str(self.path), field="--resume", hint="train without --resume")
+            fingerprint["facts_version"] = graph.facts_version
         eps = episodes(graph, qs + vs, self._encode, hide_answers=True)
+        if resume:
+            _use_checkpoint_vectors(resume_from, eps, self.store.checkpoint_path)
+            run = resume_from[1]["run"]
+        else:
+            resume_from, run = None, uuid.uuid4().hex
+            if log and self.store.checkpoint_path.exists():
+                log(f"starting afresh; the checkpoint of an unfinished run "
+                    f"({self.store.checkpoint_path.name}) will be replaced")
+        vectors = {"episodes.qvec": np.stack([e.qvec for e in eps]),
+                   "episodes.qstate": np.stack([e.qstate for e in eps]),
+                   "episodes.word_counts": np.array([len(e.word_vecs) for e in eps], np.int64),
+                   "episodes.word_vecs": np.concatenate([e.word_vecs for e in eps])}
+
+        def save(arrays, meta):
+            self.store.save_checkpoint(arrays | vectors,
+                                       meta | {"run": run, "fingerprint": fingerprint})
+
         train_eps = eps[:len(qs)]
         valid_eps = [e for e in eps[len(qs):] if e.starts and e.gold]
-        policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log)
+        policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log,
+                                 save_checkpoint=save, resume_from=resume_from)
         summary["baselines"] = self._tune_baselines(graph, valid_eps or train_eps[:200], max_hops)
         policy.settings.update(summary["baselines"])
         from . import embed
         policy.settings["model"] = embed.MODEL_NAME
         policy.settings["facts_version"] = graph.facts_version
+        policy.settings["train_run"] = run
         with self.store.transaction() as con:
             version = first(con.execute("SELECT coalesce(max(version), 0) + 1 FROM policies"))[0]
             policy.save(con, version, _now())
+        self.store.drop_checkpoint()  # the run is stored; nothing is left to resume
         summary["version"] = version
+        summary["resumed"] = bool(resume)
         summary["curve_png"] = self._plot_curve(summary["curve"], version)
         return summary
+
+    def _resume_point(self, fingerprint: dict) -> tuple[dict, dict]:
+        """The checkpoint to resume from, checked against this run's settings, questions and facts."""
+        cp = self.store.read_checkpoint()
+        where = str(self.store.checkpoint_path)
+        if cp is None:
+            raise InputError("there is no unfinished training run to resume", file=str(self.path),
+                             field="--resume", hint="train without --resume")
+        arrays, meta = cp
+        old = meta.get("fingerprint") or {}
+        with self.store.connect() as con:
+            done = first(con.execute("SELECT version FROM policies WHERE json_extract_string("
+                                     "settings, '$.train_run') = ?", [str(meta.get("run"))]))
+        if done:
+            self.store.drop_checkpoint()
+            raise InputError(f"the interrupted run had already finished as policy v{done[0]}",
+                             file=where, field="--resume", hint="nothing is left to resume")
+        for name, value in fingerprint["settings"].items():
+            if name in old.get("settings", {}) and old["settings"][name] != value:
+                raise InputError(f"the checkpoint was made with {old['settings'][name]!r}, this run "
+                                 f"asks {value!r}", file=where, field=name,
+                                 hint="resume with the settings of the interrupted run, or train "
+                                      "without --resume")
+        for key, what in (("questions", "training questions"), ("valid", "validation questions"),
+                          ("facts_version", "facts"), ("settings", "settings")):
+            if old.get(key) != fingerprint[key]:
+                hint = ("facts were loaded since; train without --resume" if key == "facts_version"
+                        else "resume with the same files and settings, or train without --resume")
+                raise InputError(f"the {what} differ from those of the interrupted run",
+                                 file=where, field=key, hint=hint)
+        return arrays, meta
 
     def _tune_baselines(self, graph, eps, max_hops) -> dict:
         """Give each baseline its best fixed hop count on held-out questions (a fair comparison)."""
@@ -211,8 +323,14 @@ class Hopper:
         ax.grid(alpha=0.3)
         ax.legend(loc="lower right")
         fig.tight_layout()
+        import io
+
+        from .files import write_atomic
+
+        buf = io.BytesIO()
         try:
-            fig.savefig(out, dpi=100)
+            fig.savefig(buf, format="png", dpi=100)
+            write_atomic(out, buf.getvalue())  # renamed into place beside the store
         except OSError:
             return None
         finally:

@@ -56,7 +56,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("train", parents=[common], help="train the fetch policy by REINFORCE",
                        description="Train a fetch policy on question/answer pairs (JSON Lines) and "
-                       "store it as a new version.")
+                       "store it as a new version.  The active policy changes only when training "
+                       "ends; after each epoch the run's state is saved beside the store, so an "
+                       "interrupted run continues with --resume.")
     s.add_argument("--questions", required=True, metavar="FILE")
     s.add_argument("--valid", metavar="FILE", help="validation questions (default: a tenth of --questions)")
     s.add_argument("--seed", type=_positive("--seed", 0), default=0)
@@ -64,6 +66,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--epochs", type=_positive("--epochs", 1, 10000), default=None)
     s.add_argument("--time-budget", type=_positive("--time-budget", 0), default=None,
                    metavar="SECONDS", help="stop training after this many seconds")
+    s.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run from its checkpoint beside the store "
+                        "(give the same questions and settings)")
     s.add_argument("--json", action="store_true")
 
     s = sub.add_parser("ask", parents=[common], help="answer a question, or a file of them",
@@ -158,7 +163,7 @@ def _cmd_train(args, hp):
         extra["time_budget"] = float(args.time_budget)
     log = None if args.json else (lambda m: print(m, file=sys.stderr))
     summary = hp.train(args.questions, valid=args.valid, seed=args.seed, max_hops=args.max_hops,
-                       log=log, **extra)
+                       log=log, resume=args.resume, **extra)
     if args.json:
         return _print_json(summary)
     print(f"policy v{summary['version']}: {summary['epochs']} epochs in {summary['seconds']} s "
@@ -261,6 +266,7 @@ def main(argv=None) -> int:
     os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
     # hopper's numpy work is many small products; BLAS threads only add waiting there
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    args = None
     try:
         args = build_parser().parse_args(argv)
         if args.command == "demo":
@@ -279,7 +285,13 @@ def main(argv=None) -> int:
         print(f"hopper: {exc}", file=sys.stderr)
         return exc.exit_status
     except KeyboardInterrupt:
-        print("hopper: interrupted; the store is as it was before this command", file=sys.stderr)
+        resume = ""
+        if getattr(args, "command", None) == "train":
+            from .store import Store
+            if Store(_store_path(args)).checkpoint_path.exists():
+                resume = " (hopper train --resume with the same arguments continues the training)"
+        print(f"hopper: interrupted; the store is as it was before this command{resume}",
+              file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0

@@ -14,6 +14,8 @@ def write_atomic(path, data: bytes, mode: int = 0o644) -> None:
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())  # the bytes are on disk before the name points at them
         os.chmod(tmp, mode)
         os.replace(tmp, path)
     except BaseException:

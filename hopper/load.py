@@ -5,6 +5,7 @@ import codecs
 import contextlib
 import csv
 import difflib
+import io
 import json
 import re
 import sys
@@ -14,6 +15,7 @@ from pathlib import Path
 import duckdb
 
 from .errors import InputError
+from .files import write_atomic
 from .store import Store, first
 
 REQUIRED = ("subject", "relation", "object")
@@ -429,12 +431,14 @@ def _write_rejected(stage, paths: list[Path]) -> list[str]:
             "WHERE file_no = ? AND problem IS NOT NULL ORDER BY line", [n]).fetchall()
         if not rows:
             continue
-        out = path.with_name(path.name + ".rejected.csv")
-        with open(out, "w", newline="", encoding="utf-8") as fh:
-            w = csv.writer(fh)
-            w.writerow(["line", "field", "reason", "subject", "relation", "object", "text",
-                        "source", "id"])
-            w.writerows(rows)
+        out = path.with_name(path.name + ".rejected.csv")  # beside the input, whatever its name
+        buf = io.StringIO(newline="")
+        w = csv.writer(buf)
+        w.writerow(["line", "field", "reason", "subject", "relation", "object", "text",
+                    "source", "id"])
+        w.writerows(rows)
+        # a new file renamed into place: never half written, never through a planted link
+        write_atomic(out, buf.getvalue().encode("utf-8"))
         written.append(str(out))
     return written
 

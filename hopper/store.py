@@ -305,6 +305,64 @@ class Store:
     def set_meta(con, key: str, value: str) -> None:
         con.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", [key, value])
 
+    # -- the training checkpoint beside the store --------------------------------------------
+    @property
+    def checkpoint_path(self) -> Path:
+        """Where an unfinished training run keeps its state (``STORE.train-checkpoint.npz``)."""
+        return Path(str(self.path) + ".train-checkpoint.npz")
+
+    def save_checkpoint(self, arrays: dict, meta: dict) -> None:
+        """Replace the checkpoint atomically: numeric arrays in a ``.npz`` and ``meta`` as JSON.
+
+        Never pickle: every array must be numeric, and ``read_checkpoint`` loads with
+        ``allow_pickle=False``.
+        """
+        import io
+        import json
+
+        import numpy as np
+
+        from .files import write_atomic
+
+        out = {}
+        for name, value in arrays.items():
+            a = np.asarray(value)
+            if a.dtype.kind not in "biuf":
+                raise TypeError(f"checkpoint array {name}: {a.dtype} is not numeric")
+            out[name] = a
+        out["meta"] = np.frombuffer(json.dumps(meta).encode("utf-8"), np.uint8)
+        buf = io.BytesIO()
+        np.savez(buf, **out)
+        write_atomic(self.checkpoint_path, buf.getvalue())
+
+    def read_checkpoint(self) -> tuple[dict, dict] | None:
+        """(arrays, meta) of the checkpoint, None when there is none; a damaged one is bad input."""
+        import json
+        import zipfile
+
+        import numpy as np
+
+        path = self.checkpoint_path
+        if not path.exists():
+            return None
+        try:
+            with np.load(path, allow_pickle=False) as z:
+                arrays = {k: z[k] for k in z.files if k != "meta"}
+                meta = json.loads(z["meta"].tobytes().decode("utf-8"))
+        except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as exc:
+            raise InputError(f"the training checkpoint cannot be read ({type(exc).__name__})",
+                             file=str(path), hint="train without --resume to start again") from None
+        if not isinstance(meta, dict):
+            raise InputError("the training checkpoint has no settings", file=str(path),
+                             hint="train without --resume to start again")
+        return arrays, meta
+
+    def drop_checkpoint(self) -> None:
+        try:
+            self.checkpoint_path.unlink()
+        except FileNotFoundError:
+            pass
+
     def info(self) -> dict:
         """Counts and the active policy, as in the command-line contract."""
         import json

@@ -276,9 +276,67 @@ def choose_threshold(conf: list) -> float:
     return float(best_t)
 
 
+def snapshot(P, opt, gen, rng, epoch: int, finished: bool, curve: list, best: tuple,
+             best_params: dict, stale: int, rollouts: int, seconds: float,
+             vocabulary: list) -> tuple[dict, dict]:
+    """The whole state of a training run after an epoch, as (numeric arrays, JSON-able meta).
+
+    Arrays: the parameters (``param.*``), the best parameters so far (``best.*``), Adam's
+    moment estimates and step counts (``adam.<i>.*``) and the torch random generators'
+    states; meta: the epoch, the numpy generator's state, the curve, the best scores, the
+    patience count, the training vocabulary (the rows of ``w_vocab``).  Nothing here needs
+    pickle to store or read.
+    """
+    import torch
+
+    arrays = {f"param.{k}": v.detach().numpy().copy() for k, v in P.items()}
+    arrays |= {f"best.{k}": np.asarray(v) for k, v in best_params.items()}
+    for i, st in opt.state_dict()["state"].items():
+        for name, value in st.items():
+            arrays[f"adam.{i}.{name}"] = value.detach().numpy().copy() if torch.is_tensor(value) \
+                else np.asarray(value)
+    arrays["rng.torch_generator"] = gen.get_state().numpy().copy()
+    arrays["rng.torch_global"] = torch.get_rng_state().numpy().copy()
+    meta = {"epoch": epoch, "finished": finished, "curve": curve, "best": list(best),
+            "stale": stale, "rollouts": rollouts, "seconds": round(seconds, 3),
+            "numpy_rng": rng.bit_generator.state, "vocabulary": list(vocabulary)}
+    return arrays, meta
+
+
+def restore(checkpoint: tuple[dict, dict], opt, gen, rng) -> dict:
+    """Put a ``snapshot`` back: Adam's state and the random generators; return the rest."""
+    import torch
+
+    arrays, meta = checkpoint
+    sd = opt.state_dict()
+    state = {}
+    for key, value in arrays.items():
+        if key.startswith("adam."):
+            _, i, name = key.split(".", 2)
+            state.setdefault(int(i), {})[name] = torch.from_numpy(np.array(value))
+    sd["state"] = state
+    opt.load_state_dict(sd)
+    gen.set_state(torch.from_numpy(np.array(arrays["rng.torch_generator"], np.uint8)))
+    torch.set_rng_state(torch.from_numpy(np.array(arrays["rng.torch_global"], np.uint8)))
+    rng.bit_generator.state = meta["numpy_rng"]
+    best_params = {k[len("best."):]: np.array(v, np.float32) for k, v in arrays.items()
+                   if k.startswith("best.")}
+    return {"epoch": int(meta["epoch"]), "finished": bool(meta["finished"]),
+            "curve": list(meta["curve"]), "best": tuple(meta["best"]), "best_params": best_params,
+            "stale": int(meta["stale"]), "rollouts": int(meta["rollouts"]),
+            "seconds": float(meta["seconds"])}
+
+
 def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
-        progress: bool | None = None, log=None) -> tuple[pol.Policy, dict]:
-    """Train a policy on ``train_eps``, early-stopping on ``valid_eps``; return it and a summary."""
+        progress: bool | None = None, log=None, save_checkpoint=None,
+        resume_from: tuple[dict, dict] | None = None) -> tuple[pol.Policy, dict]:
+    """Train a policy on ``train_eps``, early-stopping on ``valid_eps``; return it and a summary.
+
+    After every epoch ``save_checkpoint(arrays, meta)`` (if given) receives the whole training
+    state (see ``snapshot``); ``resume_from`` is such a pair, from which training continues
+    exactly where it was, so an interrupted and resumed run ends with the same policy as an
+    uninterrupted one.
+    """
     from threadpoolctl import threadpool_limits
 
     import torch
@@ -287,12 +345,14 @@ def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
     torch.set_num_threads(1)  # tiny tensors: more threads only wait for each other
     try:
         with threadpool_limits(limits=1, user_api="blas"):
-            return _fit(graph, train_eps, valid_eps, settings, progress, log)
+            return _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint,
+                        resume_from)
     finally:
         torch.set_num_threads(threads)
 
 
-def _fit(graph, train_eps, valid_eps, settings, progress, log):
+def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=None,
+         resume_from=None):
     import torch
 
     settings.validate()
@@ -307,15 +367,19 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
     rng = np.random.default_rng(settings.seed)
     n_rel = len(graph.relation_names)
     dim = graph.fact_vecs.shape[1]
-    basis = (pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
-             if settings.question_view != "words" else
-             (np.zeros(dim, np.float32), np.zeros((dim, 0), np.float32)))
-    words, vocabulary = None, []
-    if settings.question_view != "sentence":
-        *words, vocabulary = pol.word_basis([e.words for e in train_eps],
-                                            [e.word_vecs for e in train_eps])
-    init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
-                           basis=basis, words=words)
+    if resume_from is None:
+        basis = (pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
+                 if settings.question_view != "words" else
+                 (np.zeros(dim, np.float32), np.zeros((dim, 0), np.float32)))
+        words, vocabulary = None, []
+        if settings.question_view != "sentence":
+            *words, vocabulary = pol.word_basis([e.words for e in train_eps],
+                                                [e.word_vecs for e in train_eps])
+        init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
+                               basis=basis, words=words)
+    else:
+        init = {k: resume_from[0][f"param.{k}"] for k in pol.PARAM_SHAPES}  # Adam's order
+        vocabulary = list(resume_from[1]["vocabulary"])
     qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs) for e in train_eps}
     P = {k: torch.tensor(v, requires_grad=k not in pol.FIXED) for k, v in init.items()}
     opt = torch.optim.Adam([v for k, v in P.items() if k not in pol.FIXED], lr=settings.lr)
@@ -327,14 +391,25 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
     best = (-1.0, -1.0)
     best_params = _numpy_params(P)
     stale = 0
-    started = time.monotonic()
     rollouts_done = 0
+    start_epoch, finished, spent = 0, False, 0.0
+    if resume_from is not None:
+        state = restore(resume_from, opt, gen, rng)
+        curve, best, best_params, stale = state["curve"], state["best"], state["best_params"], state["stale"]
+        rollouts_done, start_epoch, finished, spent = (state["rollouts"], state["epoch"],
+                                                      state["finished"], state["seconds"])
+        if log:
+            log(f"resuming after epoch {start_epoch}" + (" (training had ended)" if finished else ""))
+    started = time.monotonic() - spent
     n_batches = math.ceil(len(train_eps) / settings.batch_questions)
     bar = None
-    if progress:
+    if progress and not finished:
         from tqdm import tqdm
-        bar = tqdm(total=settings.epochs * n_batches, desc="training", unit="batch", file=sys.stderr)
-    for epoch in range(settings.epochs):
+        bar = tqdm(total=settings.epochs * n_batches, initial=start_epoch * n_batches,
+                   desc="training", unit="batch", file=sys.stderr)
+    for epoch in range(start_epoch, settings.epochs):
+        if finished:
+            break
         order = rng.permutation(len(train_eps))
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
@@ -363,15 +438,19 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log):
         curve.append({"epoch": epoch + 1, "train_reward": float(np.mean(rewards_seen)),
                       "valid_hits1": vh, "valid_mrr": vm,
                       "seconds": round(time.monotonic() - started, 1)})
-        if log:
-            log(f"epoch {epoch + 1}: train reward {np.mean(rewards_seen):.3f}, "
-                f"valid Hits@1 {vh:.3f}, MRR {vm:.3f}")
         stale = 0 if vh > best[0] + 1e-9 else stale + 1  # patience counts Hits@1 gains only
         if (vh, vm) > best:
             best, best_params = (vh, vm), _numpy_params(P)
-        if stale >= settings.patience:
-            break
-        if settings.time_budget and time.monotonic() - started > settings.time_budget:
+        finished = (stale >= settings.patience or epoch + 1 == settings.epochs or bool(
+            settings.time_budget and time.monotonic() - started > settings.time_budget))
+        if save_checkpoint is not None:
+            save_checkpoint(*snapshot(P, opt, gen, rng, epoch + 1, finished, curve, best,
+                                      best_params, stale, rollouts_done,
+                                      time.monotonic() - started, vocabulary))
+        if log:
+            log(f"epoch {epoch + 1}: train reward {np.mean(rewards_seen):.3f}, "
+                f"valid Hits@1 {vh:.3f}, MRR {vm:.3f}")
+        if finished:
             break
     if bar is not None:
         bar.close()

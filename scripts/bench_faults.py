@@ -8,6 +8,11 @@ Each round, on copies of a small store of invented facts in a temporary folder:
             with the old or the complete fact count, and a second run of the load finishes it.
   two-loads two overlapping loads at once: each finishes or fails clearly (exit status not 0, a
             message, no traceback) and the store has exactly the facts of the loads that finished.
+  train     ``hopper train`` (8 epochs) killed with SIGKILL after a random number of epochs (0-8)
+            plus 0-50 ms; policy v1 must stay active and answer, and ``train --resume`` must
+            finish the run as v2 (killed before the first checkpoint: it says clearly that
+            there is nothing to resume; killed after v2 was stored: v2 answers and resume
+            says the run had finished).
 
 Usage: scripts/bench_faults [--rounds N] [--kill-after LO-HI|spread|write] [--cases ...] [--keep]
 ``--kill-after`` picks the kill time uniformly in LO..HI seconds (default 1-3: here that lands
@@ -192,11 +197,74 @@ def case_two_loads(store: Path, a: Path, b: Path, before: int, sizes: dict) -> t
     return None, ("both finished" if len(ok) == 2 else f"only {'/'.join(sorted(ok)) or 'none'} finished")
 
 
+def write_questions(path: Path) -> None:
+    rows = []
+    for i, part in enumerate(PARTS):
+        maker = MAKERS[i % len(MAKERS)]
+        rows.append({"question": f"Who makes the {part}?", "answer": maker})
+        rows.append({"question": f"In which town is the maker of the {part} based?",
+                     "answer": TOWNS[i % len(MAKERS)]})
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+
+
+def checkpoint_epoch(store: Path) -> int:
+    import numpy as np
+
+    try:
+        with np.load(str(store) + ".train-checkpoint.npz", allow_pickle=False) as z:
+            return int(json.loads(z["meta"].tobytes())["epoch"])
+    except (OSError, ValueError, KeyError):
+        return 0
+
+
+def case_train(store: Path, questions: Path, r: int) -> tuple[str | None, str]:
+    args = ["--questions", questions, "--epochs", "8", "--seed", str(r), "--store", store]
+    proc = subprocess.Popen([str(HOPPER), "train", *map(str, args)], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, env=env())
+    target = random.randint(0, 8)
+    t0 = time.monotonic()
+    while proc.poll() is None and checkpoint_epoch(store) < target and time.monotonic() - t0 < 600:
+        time.sleep(0.01)
+    time.sleep(random.uniform(0, 0.05))
+    if proc.poll() is not None:
+        return None, "finished before the kill"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    at = checkpoint_epoch(store)
+    p = hopper("info", "--json", "--store", store)
+    if p.returncode != 0:
+        return f"info failed after the kill: {p.stderr.strip()[-200:]}", ""
+    pol = json.loads(p.stdout)["policy"]
+    a = hopper("ask", f"Who makes the {PARTS[r % len(PARTS)]}?", "--json", "--store", store)
+    if a.returncode != 0 or json.loads(a.stdout)["policy_version"] != pol["version"]:
+        return f"ask after the kill: {a.stderr.strip()[-200:] or a.stdout[:200]}", ""
+    again = hopper("train", "--resume", *args)
+    if (pol["version"], pol["versions"]) == (2, 2):  # killed after the new policy was stored
+        if at and not (again.returncode == 2 and "already finished as policy v2" in again.stderr):
+            return f"resume after the run had finished: exit {again.returncode}: {again.stderr[-200:]}", ""
+        if not at and again.returncode != 2:
+            return f"resume with nothing to resume: exit {again.returncode}", ""
+        return None, "killed after the new policy was stored"
+    if (pol["version"], pol["versions"]) != (1, 1):
+        return f"after the kill the policy is v{pol['version']} of {pol['versions']}", ""
+    if at == 0:
+        if again.returncode == 2 and "no unfinished training run" in again.stderr:
+            return None, "killed before the first checkpoint (resume says so)"
+        return f"resume without a checkpoint: exit {again.returncode}: {again.stderr.strip()[-200:]}", ""
+    if again.returncode != 0 or "resuming after epoch" not in again.stderr:
+        return f"resume failed: exit {again.returncode}: {again.stderr.strip()[-200:]}", ""
+    p = hopper("info", "--json", "--store", store)
+    pol = json.loads(p.stdout)["policy"]
+    if pol["version"] != 2 or Path(str(store) + ".train-checkpoint.npz").exists():
+        return f"after resuming: policy v{pol['version']}, checkpoint left behind", ""
+    return None, f"killed after epoch {at}, resumed"
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rounds", type=int, default=10)
     ap.add_argument("--kill-after", default="1-3", metavar="LO-HI|spread|write")
-    ap.add_argument("--cases", default="asks,kill,two-loads")
+    ap.add_argument("--cases", default="asks,kill,two-loads,train")
     ap.add_argument("--keep", action="store_true", help="keep the temporary folder")
     ap.add_argument("--seed", type=int, default=None)
     args = ap.parse_args()
@@ -222,13 +290,21 @@ def main() -> int:
             print(f"could not build the small store: {p.stderr.strip()}", file=sys.stderr)
             return 2
         before = facts(base)
+        write_questions(tmp / "questions.jsonl")
+        if "train" in cases:  # the train case starts from a store with policy v1
+            trained = tmp / "trained.duckdb"
+            shutil.copy(base, trained)
+            p = hopper("train", "--questions", tmp / "questions.jsonl", "--epochs", "1", "--store", trained)
+            if p.returncode != 0:
+                print(f"could not train the first policy: {p.stderr.strip()}", file=sys.stderr)
+                return 2
 
         stats = {c: {"rounds": 0, "held": 0, "failed": 0, "why": [], "notes": {}} for c in cases}
         full_time: list = []
         for r in range(args.rounds):
             t0 = time.monotonic()
             for c in cases:
-                store = fresh(base, tmp / f"r{r}-{c}")
+                store = fresh(tmp / "trained.duckdb" if c == "train" else base, tmp / f"r{r}-{c}")
                 note = ""
                 try:
                     if c == "asks":
@@ -237,6 +313,8 @@ def main() -> int:
                         why, note = case_kill(store, tmp / "big.csv", before, window, full_time)
                     elif c == "two-loads":
                         why, note = case_two_loads(store, tmp / "a.csv", tmp / "b.csv", before, sizes)
+                    elif c == "train":
+                        why, note = case_train(store, tmp / "questions.jsonl", r)
                     else:
                         raise SystemExit(f"unknown case {c}")
                 except Exception as exc:  # noqa: BLE001

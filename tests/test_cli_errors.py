@@ -317,3 +317,18 @@ def test_ask_on_missing_store_is_one_line(tmp_path, capsys):
     assert_one_line_error(*run(capsys, "ask", "Where?", "--store", tmp_path / "none.duckdb"),
                           "none.duckdb", "no hopper store")
     assert not (tmp_path / "none.duckdb").exists()
+
+
+@pytest.mark.parametrize("command", ["train", "ask", "eval"])
+@pytest.mark.parametrize("label,text,line,field,fragment", BAD_QUESTION_FILES,
+                         ids=[c[0] for c in BAD_QUESTION_FILES])
+def test_bad_question_file_through_the_cli_exits_2_and_changes_nothing(tmp_path, capsys, unchanged, command,
+                                                                       label, text, line, field, fragment):
+    if command == "ask" and field == "answer":
+        pytest.skip("ask reads questions without answers")
+    f = tmp_path / "q.jsonl"
+    f.write_text(text, encoding="utf-8")
+    where = [f"line {line}"] if line else []
+    where += [f"field '{field}'"] if field else []
+    assert_one_line_error(*run(capsys, command, "--questions", f, "--store", unchanged),
+                          "q.jsonl", fragment, *where)

@@ -12,6 +12,7 @@ from pathlib import Path
 import pytest
 
 import hopper
+from test_crashes import catalogue, write_csv
 
 REPO = Path(__file__).resolve().parents[1]
 FACTS = [
@@ -104,3 +105,49 @@ def test_ask_waits_for_another_writer(store):
     assert doc["run_id"] in _listed(store)
     info = hopper.open_store(store).info()
     assert info["runs"] == 1
+
+
+def test_two_loads_at_once_both_land_and_nothing_is_lost(store):
+    """Two overlapping loads started together: one waits for the other's write; the store ends
+    with exactly the union of the facts (each once, each with its vector)."""
+    import duckdb
+
+    a_rows, b_rows = catalogue(0, 150), catalogue(100, 150)  # 50 rows in both
+    a = write_csv(store.parent / "a.csv", a_rows)
+    b = write_csv(store.parent / "b.csv", b_rows)
+    procs = [subprocess.Popen(_hopper("load", f, "--json", "--store", str(store)), stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True, env=_env(), cwd=REPO) for f in (a, b)]
+    reports = []
+    for p in procs:
+        out, err = p.communicate(timeout=300)
+        assert p.returncode == 0, err
+        reports.append(json.loads(out))
+    assert sorted(r["facts_added"] for r in reports) == [100, 150]  # the later one skips the overlap
+    con = duckdb.connect(str(store), read_only=True)
+    try:
+        got = set(con.execute("SELECT subject, relation, object FROM facts").fetchall())
+        n, n_vec, n_loads = con.execute("SELECT (SELECT count(*) FROM facts), (SELECT count(*) FROM "
+                                        "fact_vectors), (SELECT count(*) FROM loads)").fetchall()[0]
+    finally:
+        con.close()
+    assert got == set(FACTS) | set(a_rows) | set(b_rows)
+    assert n == n_vec == len(FACTS) + 250 and n_loads == 3
+
+
+def test_load_that_cannot_get_the_store_fails_clearly_and_changes_nothing(store):
+    """With another process holding the store past HOPPER_LOCK_TIMEOUT, a load gives up: exit
+    status 1, one line saying why and what to do, and the store has what it had."""
+    more = write_csv(store.parent / "more.csv", catalogue(500, 20))
+    holder = subprocess.Popen([sys.executable, "-c", HOLDER, str(store), "20"], stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True, env=_env())
+    try:
+        assert holder.stdout.readline().strip() == "locked", holder.stderr.read()
+        proc = subprocess.run(_hopper("load", more, "--store", str(store)), capture_output=True, text=True,
+                              env=dict(_env(), HOPPER_LOCK_TIMEOUT="2"), cwd=REPO, timeout=120)
+    finally:
+        holder.kill()
+        holder.wait()
+    assert proc.returncode == 1 and proc.stdout == ""
+    assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert "held the store for too long" in proc.stderr and "HOPPER_LOCK_TIMEOUT" in proc.stderr
+    assert hopper.open_store(store).info()["facts"] == len(FACTS)

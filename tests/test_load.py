@@ -331,3 +331,47 @@ def test_unicode_names_load_and_are_found_again_by_name(tmp_path):
     g = write_jsonl(tmp_path / "g.jsonl", [{"subject": "Ame\u0301lie", "relation": "likes",
                                             "object": "Cafe\u0301 de Flore"}])
     assert hp.load([g])["facts_added"] == 0
+
+
+# Property: a generated question file either reads exactly its questions, in order and at their
+# lines, or is refused whole at its first bad line with the field at fault; nothing else happens.
+_word = st.text(st.sampled_from(list("ab ?'\"é東🙂\t")), min_size=0, max_size=5)
+_good_q = st.builds(lambda q, a: {"question": q, "answer": a},
+                    _word.filter(lambda t: t.strip()), st.one_of(_word.filter(lambda t: t.strip()),
+                                                                st.lists(_word.filter(lambda t: t.strip()),
+                                                                         min_size=1, max_size=2)))
+_bad_q = st.sampled_from([
+    ('{"question": "Where?"}', "answer"), ('{"question": "Where?", "answer": 3}', "answer"),
+    ('{"question": "Where?", "answer": []}', "answer"), ('{"question": "  ", "answer": "x"}', "question"),
+    ('{"answer": "x"}', "question"), ('{"question": "Where?", "answer": ', None), ('[1]', None),
+    ('{"subject": "A", "answer": "x"}', "relation")])
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(lines=st.lists(st.one_of(_good_q.map(lambda o: ("good", o)), _bad_q.map(lambda b: ("bad", b)),
+                                st.just(("blank", None))), min_size=1, max_size=8))
+def test_generated_question_file_reads_exactly_its_questions_or_is_refused_at_the_first_bad_line(tmp_path, lines):
+    text, want, first_bad = "", [], None
+    for n, (kind, value) in enumerate(lines, start=1):
+        if kind == "good":
+            text += json.dumps(value, ensure_ascii=False) + "\n"
+            answers = value["answer"] if isinstance(value["answer"], list) else [value["answer"]]
+            want.append((n, unicodedata.normalize("NFC", " ".join(value["question"].split())),
+                         [unicodedata.normalize("NFC", " ".join(a.split())) for a in answers]))
+        elif kind == "bad":
+            text += value[0] + "\n"
+            first_bad = first_bad or (n, value[1])
+        else:
+            text += "   \n"
+    f = tmp_path / "q.jsonl"
+    f.write_text(text, encoding="utf-8")
+    if first_bad is None and want:
+        got = read_questions(f)
+        assert [(q.line, q.text, q.answers) for q in got] == want
+    else:
+        with pytest.raises(InputError) as e:
+            read_questions(f)
+        if first_bad is None:
+            assert "no questions" in str(e.value)
+        else:
+            assert (e.value.line, e.value.field) == first_bad
