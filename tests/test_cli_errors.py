@@ -319,13 +319,15 @@ def test_ask_on_missing_store_is_one_line(tmp_path, capsys):
     assert not (tmp_path / "none.duckdb").exists()
 
 
-@pytest.mark.parametrize("command", ["train", "ask", "eval"])
-@pytest.mark.parametrize("label,text,line,field,fragment", BAD_QUESTION_FILES,
-                         ids=[c[0] for c in BAD_QUESTION_FILES])
+# ask reads questions without answers, so a bad answer is not its business
+CLI_BAD_QUESTIONS = [(cmd, *case) for cmd in ("train", "ask", "eval") for case in BAD_QUESTION_FILES
+                     if not (cmd == "ask" and case[3] == "answer")]
+
+
+@pytest.mark.parametrize("command,label,text,line,field,fragment", CLI_BAD_QUESTIONS,
+                         ids=[f"{c[0]}-{c[1]}" for c in CLI_BAD_QUESTIONS])
 def test_bad_question_file_through_the_cli_exits_2_and_changes_nothing(tmp_path, capsys, unchanged, command,
                                                                        label, text, line, field, fragment):
-    if command == "ask" and field == "answer":
-        pytest.skip("ask reads questions without answers")
     f = tmp_path / "q.jsonl"
     f.write_text(text, encoding="utf-8")
     where = [f"line {line}"] if line else []
