@@ -49,6 +49,7 @@ class TrainSettings:
     adj_cap: int = 32           # touching facts offered per hop (hubs are pre-ranked and cut)
     seed: int = 0
     time_budget: float = 0.0    # seconds; 0 = no limit
+    sentence_dropout: float = 0.5  # chance a question's sentence view is hidden in a rollout batch
     question_view: str = "both"  # the policy reads the question's sentence vector, its words, or both
 
     def validate(self) -> None:
@@ -61,6 +62,7 @@ class TrainSettings:
             "grad_clip": self.grad_clip > 0, "patience": self.patience >= 1,
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
             "question_view": self.question_view in pol.VIEWS,
+            "sentence_dropout": 0 <= self.sentence_dropout < 1,
         }
         for name, ok in checks.items():
             if not ok:
@@ -176,6 +178,21 @@ def _candidates_cached(graph: Graph, walker: Walker, ep: Episode, t: int, T: int
                        prerank_cache=ep.prerank, cap=cap)
         ep.prerank[key] = c
     return c
+
+
+def _drop_sentence(qx: dict, batch: list, k: int, p: float, rng) -> dict:
+    """Hide the sentence view (the first k features) of some questions, so the policy also
+    learns to act on the word view alone (robust when the sentence view is unlike training)."""
+    if p <= 0 or k == 0:
+        return qx
+    out = {}
+    for ep in batch:
+        x = qx[id(ep)]
+        if rng.random() < p:
+            x = x.copy()
+            x[:k] = 0.0
+        out[id(ep)] = x
+    return out
 
 
 def kind_overlap(graph: Graph, a: int, b: int) -> float:
@@ -418,7 +435,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
-                type_reward=shaping, qx=qx)
+                type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
+                                                       settings.sentence_dropout, rng))
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
