@@ -108,6 +108,12 @@ class Hopper:
             embed.ensure_fast_model()
         except Exception:  # noqa: BLE001 - ask falls back to the reference encoder
             pass
+        if report.facts_added:
+            # Build the graph cache and the dense index now, so the next `ask` only reads them.
+            try:
+                self._graph_now(build_index=True)
+            except Exception:  # noqa: BLE001 - ask builds the cache itself and scans exactly
+                self._graph = None
         return report.as_dict()
 
     def info(self) -> dict:
@@ -122,16 +128,17 @@ class Hopper:
             self._encoder = embed.Encoder("auto")
         return self._encoder
 
-    def _graph_now(self):
+    def _graph_now(self, build_index: bool = False):
+        """The current graph; ``build_index`` also fits the dense index if missing (sklearn)."""
         from .env import Graph
 
         if self._graph is None:  # a fresh process: one connection reads version and arrays
-            self._graph = Graph.from_store(self.store)
+            self._graph = Graph.from_store(self.store, build_index=build_index)
             return self._graph
         with self.store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
-        if self._graph.facts_version != version:
-            self._graph = Graph.from_store(self.store)
+        if self._graph.facts_version != version or (build_index and self._graph.ivf is None):
+            self._graph = Graph.from_store(self.store, build_index=build_index)
         return self._graph
 
     def _policy(self, version=None, required=True):
@@ -217,7 +224,7 @@ class Hopper:
             facts_version = int(Store.get_meta(con, "facts_version", "0"))
         fingerprint = _fingerprint(cfg, qs, vs, facts_version)
         resume_from = self._resume_point(fingerprint) if resume else None
-        graph = self._graph_now().in_memory()
+        graph = self._graph_now(build_index=True).in_memory()
         if graph.facts_version != facts_version:  # a load landed just now
             if resume:
                 raise InputError("facts were loaded since the run was interrupted",

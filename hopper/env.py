@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .index import IVFIndex, exact_search, min_facts
 from .store import Store
 
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
@@ -67,22 +68,39 @@ class Graph:
         self.facts_version = facts_version
         self._name_index = None
         self._max_name_tokens = 1
+        self._name_keys = None    # precomputed name_key of every entity (from the cache)
         self._fact_row = None
+        self.ivf: IVFIndex | None = None  # the dense search's index; None = exact scan
 
     # -- building ------------------------------------------------------------------------
     @classmethod
-    def from_store(cls, store: Store, use_cache: bool = True) -> "Graph":
+    def from_store(cls, store: Store, use_cache: bool = True, build_index: bool = False) -> "Graph":
+        """The store's graph, from the cache beside it when current.
+
+        ``build_index``: also fit the dense search's IVF index when the store is large enough
+        and none is cached (imports scikit-learn; load and train ask for it, ``ask`` never
+        does and falls back to the exact scan when no index exists).
+        """
+        graph = None
         with store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
             cache = Path(str(store.path) + ".cache") / f"graph-v{version}"
             if use_cache and (cache / "done").exists():
                 try:
-                    return cls._read_cache(cache, version)
+                    graph = cls._read_cache(cache, version)
                 except (OSError, ValueError):
-                    pass  # a damaged cache is rebuilt below
-            graph = cls._read_store(con, version)
-        if use_cache:
-            graph._write_cache(cache)
+                    graph = None  # a damaged cache is rebuilt below
+            if graph is None:
+                graph = cls._read_store(con, version)
+                if use_cache:
+                    graph._write_cache(cache)
+        if build_index and graph.ivf is None and graph.n_facts >= min_facts():
+            graph.ivf = IVFIndex.build(np.asarray(graph.fact_vecs))
+            if use_cache and (cache / "done").exists():
+                try:
+                    graph.ivf.save(cache / "ivf")
+                except OSError:
+                    pass  # a read-only folder: this process keeps its index in memory
         return graph
 
     @classmethod
@@ -134,8 +152,10 @@ class Graph:
             tmp = Path(tempfile.mkdtemp(prefix=".tmp-", dir=cache.parent))
             for name in self._ARRAYS:
                 np.save(tmp / f"{name}.npy", getattr(self, name), allow_pickle=False)
+            self._ensure_names()
             (tmp / "names.json").write_text(json.dumps(
-                {"entities": self.entity_names, "relations": self.relation_names}), "utf-8")
+                {"entities": self.entity_names, "relations": self.relation_names,
+                 "keys": self._name_keys, "max_name_tokens": self._max_name_tokens}), "utf-8")
             (tmp / "done").write_text("ok")
             try:
                 os.replace(tmp, cache)
@@ -152,12 +172,23 @@ class Graph:
         arrays = {n: np.load(cache / f"{n}.npy", mmap_mode="r", allow_pickle=False)
                   for n in cls._ARRAYS}
         names = json.loads((cache / "names.json").read_text("utf-8"))
-        return cls(arrays, names["entities"], names["relations"], version)
+        graph = cls(arrays, names["entities"], names["relations"], version)
+        keys = names.get("keys")
+        if isinstance(keys, list) and len(keys) == len(graph.entity_names):
+            graph._name_keys = keys
+            graph._max_name_tokens = int(names.get("max_name_tokens", 12))
+        graph.ivf = IVFIndex.read(cache / "ivf")
+        if graph.ivf is not None and len(graph.ivf.list_rows) != graph.n_facts:
+            graph.ivf = None  # not this snapshot's index
+        return graph
 
     def in_memory(self) -> "Graph":
         """Copy memory-mapped arrays into RAM (training reads them many thousand times)."""
         for name in self._ARRAYS:
             setattr(self, name, np.array(getattr(self, name)))
+        if self.ivf is not None:
+            for name in ("centroids", "list_ptr", "list_rows", "list_vecs"):
+                setattr(self.ivf, name, np.array(getattr(self.ivf, name)))
         return self
 
     # -- lookups -------------------------------------------------------------------------
@@ -170,15 +201,15 @@ class Graph:
         return self._name_index.get(name_key(name))
 
     def _ensure_names(self):
-        if self._name_index is None:
-            index = {}
-            longest = 1
-            for i, n in enumerate(self.entity_names):
-                key = name_key(n)
-                index.setdefault(key, i)
-                longest = max(longest, len(_tokens(n)))
-            self._name_index = index
+        if self._name_index is not None:
+            return
+        if self._name_keys is None:  # not read from the cache: compute the keys once
+            self._name_keys = [name_key(n) for n in self.entity_names]
+            longest = max([len(_tokens(n)) for n in self.entity_names] + [1])
             self._max_name_tokens = min(longest, 12)
+        # The first entity of a key wins: build from the end so earlier ones overwrite.
+        n = len(self._name_keys)
+        self._name_index = dict(zip(reversed(self._name_keys), range(n - 1, -1, -1)))
 
     def fact_row(self, fact_id: int) -> int | None:
         if self._fact_row is None:
@@ -220,13 +251,15 @@ class Graph:
         return int(self.obj[fact] if direction == 0 else self.subj[fact])
 
     def dense_search(self, query: np.ndarray, k: int, exclude=()) -> np.ndarray:
-        """Facts most similar to ``query`` (exact search over the fact vectors)."""
+        """Facts most similar to ``query``, best first: probes the IVF index when there is
+        one (large stores), else an exact scan over the fact vectors."""
         if self.n_facts == 0:
             return np.zeros(0, np.int64)
-        sims = np.asarray(self.fact_vecs) @ query
         k2 = min(self.n_facts, k + len(exclude))
-        top = np.argpartition(-sims, k2 - 1)[:k2]
-        top = top[np.argsort(-sims[top], kind="stable")]
+        if self.ivf is not None:
+            top = self.ivf.search(query, k2)
+        else:
+            top = exact_search(self.fact_vecs, query, k2)
         ex = set(int(e) for e in exclude)
         return np.array([t for t in top if int(t) not in ex][:k], np.int64)
 
