@@ -1,12 +1,14 @@
 """The environment: the fact graph in memory, entity linking, and what can be fetched next."""
 from __future__ import annotations
 
+import bisect
 import json
 import os
 import re
 import shutil
 import tempfile
 import unicodedata
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -15,6 +17,7 @@ import numpy as np
 from .index import IVFIndex, exact_search, min_facts
 from .store import Store
 
+_CACHE_LAYOUT = "l2"  # bump when the cache's files change, so old snapshots are not read
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
 DENSE_K = 3         # facts offered at the first hop by dense similarity, to recover a poor link
 LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
@@ -43,6 +46,47 @@ def _tokens(text: str) -> list[str]:
     return out
 
 
+class StringTable(Sequence):
+    """A read-only list of strings kept as one UTF-8 byte array and offsets (two ``.npy``
+    files, memory-mapped): a fresh process reads no per-name Python objects up front."""
+
+    def __init__(self, blob: np.ndarray, ptr: np.ndarray):
+        self.blob, self.ptr = blob, ptr
+
+    @classmethod
+    def pack(cls, strings) -> "StringTable":
+        data = [s.encode("utf-8") for s in strings]
+        ptr = np.zeros(len(data) + 1, np.int64)
+        ptr[1:] = np.cumsum([len(d) for d in data]) if data else []
+        return cls(np.frombuffer(b"".join(data), np.uint8), ptr)
+
+    def __len__(self) -> int:
+        return len(self.ptr) - 1
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        i = int(i)
+        if i < 0:
+            i += len(self)
+        if not 0 <= i < len(self):
+            raise IndexError(i)
+        return bytes(self.blob[self.ptr[i]:self.ptr[i + 1]]).decode("utf-8")
+
+
+class _SortedKeys:
+    """Name key -> first entity with it, by binary search over keys sorted at cache time."""
+
+    def __init__(self, keys: StringTable, rows: np.ndarray):
+        self.keys, self.rows = keys, rows
+
+    def get(self, key: str):
+        i = bisect.bisect_left(self.keys, key)
+        if i < len(self.keys) and self.keys[i] == key:
+            return int(self.rows[i])
+        return None
+
+
 class Graph:
     """The store's facts as arrays: the one view training, search and the baselines share.
 
@@ -68,23 +112,26 @@ class Graph:
         self.facts_version = facts_version
         self._name_index = None
         self._max_name_tokens = 1
-        self._name_keys = None    # precomputed name_key of every entity (from the cache)
         self._fact_row = None
         self.ivf: IVFIndex | None = None  # the dense search's index; None = exact scan
 
     # -- building ------------------------------------------------------------------------
     @classmethod
-    def from_store(cls, store: Store, use_cache: bool = True, build_index: bool = False) -> "Graph":
+    def from_store(cls, store: Store, use_cache: bool = True, build_index: bool = False,
+                   also=None) -> "Graph":
         """The store's graph, from the cache beside it when current.
 
         ``build_index``: also fit the dense search's IVF index when the store is large enough
         and none is cached (imports scikit-learn; load and train ask for it, ``ask`` never
-        does and falls back to the exact scan when no index exists).
+        does and falls back to the exact scan when no index exists).  ``also(con)``, when
+        given, runs on the same read connection (the caller reads more in the same open).
         """
         graph = None
         with store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
-            cache = Path(str(store.path) + ".cache") / f"graph-v{version}"
+            if also is not None:
+                also(con)
+            cache = Path(str(store.path) + ".cache") / f"graph-v{version}-{_CACHE_LAYOUT}"
             if use_cache and (cache / "done").exists():
                 try:
                     graph = cls._read_cache(cache, version)
@@ -152,10 +199,18 @@ class Graph:
             tmp = Path(tempfile.mkdtemp(prefix=".tmp-", dir=cache.parent))
             for name in self._ARRAYS:
                 np.save(tmp / f"{name}.npy", getattr(self, name), allow_pickle=False)
-            self._ensure_names()
+            keys = [name_key(n) for n in self.entity_names]
+            order = sorted(range(len(keys)), key=lambda i: (keys[i], i))  # first entity first
+            longest = max([len(_tokens(n)) for n in self.entity_names] + [1])
+            tables = {"names": StringTable.pack(self.entity_names),
+                      "keys": StringTable.pack([keys[i] for i in order])}
+            for tname, table in tables.items():
+                np.save(tmp / f"{tname}_blob.npy", table.blob, allow_pickle=False)
+                np.save(tmp / f"{tname}_ptr.npy", table.ptr, allow_pickle=False)
+            np.save(tmp / "keys_rows.npy", np.array(order, np.int64), allow_pickle=False)
             (tmp / "names.json").write_text(json.dumps(
-                {"entities": self.entity_names, "relations": self.relation_names,
-                 "keys": self._name_keys, "max_name_tokens": self._max_name_tokens}), "utf-8")
+                {"relations": list(self.relation_names), "max_name_tokens": min(longest, 12)}),
+                "utf-8")
             (tmp / "done").write_text("ok")
             try:
                 os.replace(tmp, cache)
@@ -172,11 +227,18 @@ class Graph:
         arrays = {n: np.load(cache / f"{n}.npy", mmap_mode="r", allow_pickle=False)
                   for n in cls._ARRAYS}
         names = json.loads((cache / "names.json").read_text("utf-8"))
-        graph = cls(arrays, names["entities"], names["relations"], version)
-        keys = names.get("keys")
-        if isinstance(keys, list) and len(keys) == len(graph.entity_names):
-            graph._name_keys = keys
-            graph._max_name_tokens = int(names.get("max_name_tokens", 12))
+
+        def table(tname):
+            return StringTable(np.load(cache / f"{tname}_blob.npy", mmap_mode="r", allow_pickle=False),
+                               np.load(cache / f"{tname}_ptr.npy", mmap_mode="r", allow_pickle=False))
+
+        entity_names = table("names")
+        graph = cls(arrays, entity_names, names["relations"], version)
+        if len(entity_names) != len(graph.adj_ptr) - 1:
+            raise ValueError("the cached names do not match the cached graph")
+        graph._name_index = _SortedKeys(table("keys"), np.load(cache / "keys_rows.npy", mmap_mode="r",
+                                                               allow_pickle=False))
+        graph._max_name_tokens = int(names["max_name_tokens"])
         graph.ivf = IVFIndex.read(cache / "ivf")
         if graph.ivf is not None and len(graph.ivf.list_rows) != graph.n_facts:
             graph.ivf = None  # not this snapshot's index
@@ -201,15 +263,14 @@ class Graph:
         return self._name_index.get(name_key(name))
 
     def _ensure_names(self):
-        if self._name_index is not None:
-            return
-        if self._name_keys is None:  # not read from the cache: compute the keys once
-            self._name_keys = [name_key(n) for n in self.entity_names]
-            longest = max([len(_tokens(n)) for n in self.entity_names] + [1])
+        if self._name_index is None:  # (a graph read from the cache has a sorted key table)
+            index = {}
+            longest = 1
+            for i, n in enumerate(self.entity_names):
+                index.setdefault(name_key(n), i)
+                longest = max(longest, len(_tokens(n)))
+            self._name_index = index
             self._max_name_tokens = min(longest, 12)
-        # The first entity of a key wins: build from the end so earlier ones overwrite.
-        n = len(self._name_keys)
-        self._name_index = dict(zip(reversed(self._name_keys), range(n - 1, -1, -1)))
 
     def fact_row(self, fact_id: int) -> int | None:
         if self._fact_row is None:
