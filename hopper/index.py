@@ -5,7 +5,6 @@ import json
 import math
 import os
 import shutil
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -161,21 +160,18 @@ class IVFIndex:
     # -- files: plain .npy (no pickle) plus a small JSON ------------------------------------
     def save(self, folder: Path) -> None:
         """Write the index into ``folder`` atomically (a temporary folder renamed into place)."""
-        folder = Path(folder)
-        folder.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=".ivf-", dir=folder.parent))
-        try:
+        from .files import publish_folder
+
+        def build(tmp: Path) -> None:
             for name in _FILES:
                 np.save(tmp / f"{name}.npy", getattr(self, name), allow_pickle=False)
             (tmp / "ivf.json").write_text(json.dumps(
                 {"format": _FORMAT, "nprobe": self.nprobe, "n_lists": self.n_lists}), "utf-8")
-            try:
-                os.replace(tmp, folder)
-            except OSError:
-                if not (folder / "ivf.json").is_file():  # not a rival's finished copy
-                    raise
-        finally:
-            shutil.rmtree(tmp, ignore_errors=True)
+
+        folder = Path(folder)
+        if folder.exists() and IVFIndex.read(folder) is None:  # an older format or damaged
+            shutil.rmtree(folder, ignore_errors=True)
+        publish_folder(build, folder, "ivf.json")
 
     @classmethod
     def read(cls, folder: Path) -> "IVFIndex | None":
