@@ -108,6 +108,12 @@ class Hopper:
             embed.ensure_fast_model()
         except Exception:  # noqa: BLE001 - ask falls back to the reference encoder
             pass
+        if report.facts_added:
+            # Build the graph cache and the dense index now, so the next `ask` only reads them.
+            try:
+                self._graph_now(build_index=True)
+            except Exception:  # noqa: BLE001 - ask builds the cache itself and scans exactly
+                self._graph = None
         return report.as_dict()
 
     def info(self) -> dict:
@@ -116,40 +122,62 @@ class Hopper:
 
     # -- shared pieces ---------------------------------------------------------------------------
     def _encoder_for_load(self):
-        from . import embed
+        return self._encoder_now()
 
-        if self._encoder is None:
-            self._encoder = embed.Encoder("auto")
-        return self._encoder
+    def _graph_now(self, build_index: bool = False, also=None):
+        """The current graph; ``build_index`` also fits the dense index if missing (sklearn).
 
-    def _graph_now(self):
+        ``also(con)``, when given, runs on the connection that reads the graph in a fresh
+        process (``ask`` reads the policy there: one DuckDB open fewer per cold answer).
+        """
         from .env import Graph
 
         if self._graph is None:  # a fresh process: one connection reads version and arrays
-            self._graph = Graph.from_store(self.store)
+            self._graph = Graph.from_store(self.store, build_index=build_index, also=also)
             return self._graph
         with self.store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
-        if self._graph.facts_version != version:
-            self._graph = Graph.from_store(self.store)
+            if also is not None:
+                also(con)
+        if self._graph.facts_version != version or (build_index and self._graph.ivf is None):
+            self._graph = Graph.from_store(self.store, build_index=build_index)
         return self._graph
 
-    def _policy(self, version=None, required=True):
+    def _policy(self, version=None, required=True, con=None):
         from .policy import Policy
 
-        with self.store.connect() as con:
+        if con is None:
+            with self.store.connect() as c:
+                policy = Policy.read(c, version)
+        else:
             policy = Policy.read(con, version)
         if policy is None and required:
             raise InputError("the store has no trained policy", file=str(self.path),
                              hint="run 'hopper train --questions FILE', or use --strategy greedy or walk")
         return policy
 
-    def _baseline_settings(self):
+    def _baseline_settings(self, con=None):
         """The active policy, if readable, only for the baselines' tuned hop counts."""
         try:
-            return self._policy(required=False)
+            return self._policy(required=False, con=con)
         except InputError:
             return None
+
+    def _graph_and_policy(self, strategy: str):
+        """The graph and the policy ``strategy`` needs, read on one connection."""
+        got: dict = {}
+
+        def read_policy(con):
+            try:
+                got["policy"] = (self._policy(con=con) if strategy == "policy"
+                                 else self._baseline_settings(con=con))
+            except InputError as e:
+                got["error"] = e
+
+        graph = self._graph_now(also=read_policy)
+        if "error" in got:
+            raise got["error"]
+        return graph, got["policy"]
 
     def _questions(self, questions, need_answer=True) -> list[Question]:
         if isinstance(questions, (str, Path)):
@@ -167,11 +195,14 @@ class Hopper:
         return out
 
     def _encode(self, texts):
+        return self._encoder_now().encode(list(texts))
+
+    def _encoder_now(self):
         from . import embed
 
         if self._encoder is None:
             self._encoder = embed.Encoder("auto")
-        return self._encoder.encode(list(texts))
+        return self._encoder
 
     # -- training --------------------------------------------------------------------------------
     def train(self, questions, valid=None, seed: int = 0, max_hops: int = 4,
@@ -217,7 +248,7 @@ class Hopper:
             facts_version = int(Store.get_meta(con, "facts_version", "0"))
         fingerprint = _fingerprint(cfg, qs, vs, facts_version)
         resume_from = self._resume_point(fingerprint) if resume else None
-        graph = self._graph_now().in_memory()
+        graph = self._graph_now(build_index=True).in_memory()
         if graph.facts_version != facts_version:  # a load landed just now
             if resume:
                 raise InputError("facts were loaded since the run was interrupted",
@@ -357,8 +388,7 @@ class Hopper:
         _check_int("top", top, 1, 1000)
         qs = self._questions(questions, need_answer=False)
         self.store.require()
-        graph = self._graph_now()
-        policy = self._policy() if strategy == "policy" else self._baseline_settings()
+        graph, policy = self._graph_and_policy(strategy)
         from .env import episodes
 
         eps = episodes(graph, qs, self._encode)

@@ -133,7 +133,8 @@ def _cmd_load(args, hp):
     for f in report["rejected_files"]:
         print(f"rejected rows and reasons: {f}")
     print(f"{report['entities_added']} new entities, {report['relations_added']} new relations, "
-          f"{report['embedded']} texts embedded")
+          f"{report['embedded']} texts embedded"
+          + (f", {report['reused']} vectors reused from an interrupted load" if report["reused"] else ""))
 
 
 def _cmd_info(args, hp):

@@ -6,9 +6,7 @@ import hashlib
 import json
 import os
 import pathlib
-import shutil
 import sys
-import tempfile
 import threading
 from typing import Sequence
 
@@ -75,6 +73,7 @@ def cache_dir() -> pathlib.Path:
     return pathlib.Path.home() / ".cache" / "hopper"
 
 
+from .files import publish_folder as _publish_folder  # noqa: E402
 from .files import write_atomic as _write_atomic  # noqa: E402
 
 
@@ -197,26 +196,8 @@ def _export_fp32(dest: pathlib.Path, reference) -> None:
 
 
 def _publish(build, final_dir: pathlib.Path) -> None:
-    """Run build(tmp_dir) in a fresh hidden folder beside final_dir, then rename it into place.
-
-    Readers see the whole folder or none of it; of two racing builders one wins and the
-    other's copy is dropped.
-    """
-    final_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = pathlib.Path(tempfile.mkdtemp(prefix=".build-", dir=final_dir.parent))
-    try:
-        build(tmp)
-        # mkdtemp and onnx make owner-only files; the cache is as readable as any other.
-        os.chmod(tmp, 0o755)
-        for f in tmp.iterdir():
-            os.chmod(f, 0o644)
-        try:
-            os.replace(tmp, final_dir)
-        except OSError:
-            if not (final_dir / "model.onnx").is_file():  # not a rival's finished copy
-                raise
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+    """Build a model folder atomically (see ``files.publish_folder``)."""
+    _publish_folder(build, final_dir, "model.onnx")
 
 
 def _worst_cosine(a: np.ndarray, b: np.ndarray) -> float:

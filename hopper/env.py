@@ -7,13 +7,16 @@ import re
 import shutil
 import tempfile
 import unicodedata
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from .index import IVFIndex, exact_search, mapped, min_facts
 from .store import Store
 
+_CACHE_LAYOUT = "l2"  # bump when the cache's files change, so old snapshots are not read
 ADJ_CAP = 32        # touching facts offered per hop (a hub with thousands stays cheap)
 DENSE_K = 3         # facts offered at the first hop by dense similarity, to recover a poor link
 LINK_MIN_SIM = 0.60  # dense entity-link fallback: below this cosine the question names nothing we know
@@ -42,6 +45,57 @@ def _tokens(text: str) -> list[str]:
     return out
 
 
+class StringTable(Sequence):
+    """A read-only list of strings kept as one UTF-8 byte array and offsets (two ``.npy``
+    files, memory-mapped): a fresh process reads no per-name Python objects up front."""
+
+    def __init__(self, blob: np.ndarray, ptr: np.ndarray):
+        self.blob, self.ptr = blob, ptr
+
+    @classmethod
+    def pack(cls, strings) -> "StringTable":
+        data = [s.encode("utf-8") for s in strings]
+        ptr = np.zeros(len(data) + 1, np.int64)
+        ptr[1:] = np.cumsum([len(d) for d in data]) if data else []
+        return cls(np.frombuffer(b"".join(data), np.uint8), ptr)
+
+    def __len__(self) -> int:
+        return len(self.ptr) - 1
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        i = int(i)
+        if i < 0:
+            i += len(self)
+        if not 0 <= i < len(self):
+            raise IndexError(i)
+        return bytes(self.blob[self.ptr[i]:self.ptr[i + 1]]).decode("utf-8")
+
+
+class _SortedKeys:
+    """Name key -> first entity with it, by binary search over keys sorted at cache time."""
+
+    def __init__(self, keys: StringTable, rows: np.ndarray):
+        self.keys, self.rows = keys, rows
+
+    def get(self, key: str):
+        # UTF-8 bytes sort as their code points do, so the keys (sorted as str) are searched
+        # as bytes without decoding any of them.
+        k = key.encode("utf-8")
+        blob, ptr = self.keys.blob, self.keys.ptr
+        lo, hi = 0, len(ptr) - 1
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if bytes(blob[ptr[mid]:ptr[mid + 1]]) < k:
+                lo = mid + 1
+            else:
+                hi = mid
+        if lo < len(ptr) - 1 and bytes(blob[ptr[lo]:ptr[lo + 1]]) == k:
+            return int(self.rows[lo])
+        return None
+
+
 class Graph:
     """The store's facts as arrays: the one view training, search and the baselines share.
 
@@ -68,21 +122,41 @@ class Graph:
         self._name_index = None
         self._max_name_tokens = 1
         self._fact_row = None
+        self.ivf: IVFIndex | None = None  # the dense search's index; None = exact scan
 
     # -- building ------------------------------------------------------------------------
     @classmethod
-    def from_store(cls, store: Store, use_cache: bool = True) -> "Graph":
+    def from_store(cls, store: Store, use_cache: bool = True, build_index: bool = False,
+                   also=None) -> "Graph":
+        """The store's graph, from the cache beside it when current.
+
+        ``build_index``: also fit the dense search's IVF index when the store is large enough
+        and none is cached (imports scikit-learn; load and train ask for it, ``ask`` never
+        does and falls back to the exact scan when no index exists).  ``also(con)``, when
+        given, runs on the same read connection (the caller reads more in the same open).
+        """
+        graph = None
         with store.connect() as con:
             version = int(Store.get_meta(con, "facts_version", "0"))
-            cache = Path(str(store.path) + ".cache") / f"graph-v{version}"
+            if also is not None:
+                also(con)
+            cache = Path(str(store.path) + ".cache") / f"graph-v{version}-{_CACHE_LAYOUT}"
             if use_cache and (cache / "done").exists():
                 try:
-                    return cls._read_cache(cache, version)
+                    graph = cls._read_cache(cache, version)
                 except (OSError, ValueError):
-                    pass  # a damaged cache is rebuilt below
-            graph = cls._read_store(con, version)
-        if use_cache:
-            graph._write_cache(cache)
+                    graph = None  # a damaged cache is rebuilt below
+            if graph is None:
+                graph = cls._read_store(con, version)
+                if use_cache:
+                    graph._write_cache(cache)
+        if build_index and graph.ivf is None and graph.n_facts >= min_facts():
+            graph.ivf = IVFIndex.build(np.asarray(graph.fact_vecs))
+            if use_cache and (cache / "done").exists():
+                try:
+                    graph.ivf.save(cache / "ivf")
+                except OSError:
+                    pass  # a read-only folder: this process keeps its index in memory
         return graph
 
     @classmethod
@@ -134,8 +208,18 @@ class Graph:
             tmp = Path(tempfile.mkdtemp(prefix=".tmp-", dir=cache.parent))
             for name in self._ARRAYS:
                 np.save(tmp / f"{name}.npy", getattr(self, name), allow_pickle=False)
+            keys = [name_key(n) for n in self.entity_names]
+            order = sorted(range(len(keys)), key=lambda i: (keys[i], i))  # first entity first
+            longest = max([len(_tokens(n)) for n in self.entity_names] + [1])
+            tables = {"names": StringTable.pack(self.entity_names),
+                      "keys": StringTable.pack([keys[i] for i in order])}
+            for tname, table in tables.items():
+                np.save(tmp / f"{tname}_blob.npy", table.blob, allow_pickle=False)
+                np.save(tmp / f"{tname}_ptr.npy", table.ptr, allow_pickle=False)
+            np.save(tmp / "keys_rows.npy", np.array(order, np.int64), allow_pickle=False)
             (tmp / "names.json").write_text(json.dumps(
-                {"entities": self.entity_names, "relations": self.relation_names}), "utf-8")
+                {"relations": list(self.relation_names), "max_name_tokens": min(longest, 12)}),
+                "utf-8")
             (tmp / "done").write_text("ok")
             try:
                 os.replace(tmp, cache)
@@ -149,15 +233,30 @@ class Graph:
 
     @classmethod
     def _read_cache(cls, cache: Path, version: int) -> "Graph":
-        arrays = {n: np.load(cache / f"{n}.npy", mmap_mode="r", allow_pickle=False)
-                  for n in cls._ARRAYS}
+        arrays = {n: mapped(cache / f"{n}.npy") for n in cls._ARRAYS}
         names = json.loads((cache / "names.json").read_text("utf-8"))
-        return cls(arrays, names["entities"], names["relations"], version)
+
+        def table(tname):
+            return StringTable(mapped(cache / f"{tname}_blob.npy"), mapped(cache / f"{tname}_ptr.npy"))
+
+        entity_names = table("names")
+        graph = cls(arrays, entity_names, names["relations"], version)
+        if len(entity_names) != len(graph.adj_ptr) - 1:
+            raise ValueError("the cached names do not match the cached graph")
+        graph._name_index = _SortedKeys(table("keys"), mapped(cache / "keys_rows.npy"))
+        graph._max_name_tokens = int(names["max_name_tokens"])
+        graph.ivf = IVFIndex.read(cache / "ivf")
+        if graph.ivf is not None and len(graph.ivf.list_rows) != graph.n_facts:
+            graph.ivf = None  # not this snapshot's index
+        return graph
 
     def in_memory(self) -> "Graph":
         """Copy memory-mapped arrays into RAM (training reads them many thousand times)."""
         for name in self._ARRAYS:
             setattr(self, name, np.array(getattr(self, name)))
+        if self.ivf is not None:
+            for name in ("centroids", "list_ptr", "list_rows", "list_vecs"):
+                setattr(self.ivf, name, np.array(getattr(self.ivf, name)))
         return self
 
     # -- lookups -------------------------------------------------------------------------
@@ -170,12 +269,11 @@ class Graph:
         return self._name_index.get(name_key(name))
 
     def _ensure_names(self):
-        if self._name_index is None:
+        if self._name_index is None:  # (a graph read from the cache has a sorted key table)
             index = {}
             longest = 1
             for i, n in enumerate(self.entity_names):
-                key = name_key(n)
-                index.setdefault(key, i)
+                index.setdefault(name_key(n), i)
                 longest = max(longest, len(_tokens(n)))
             self._name_index = index
             self._max_name_tokens = min(longest, 12)
@@ -220,13 +318,15 @@ class Graph:
         return int(self.obj[fact] if direction == 0 else self.subj[fact])
 
     def dense_search(self, query: np.ndarray, k: int, exclude=()) -> np.ndarray:
-        """Facts most similar to ``query`` (exact search over the fact vectors)."""
+        """Facts most similar to ``query``, best first: probes the IVF index when there is
+        one (large stores), else an exact scan over the fact vectors."""
         if self.n_facts == 0:
             return np.zeros(0, np.int64)
-        sims = np.asarray(self.fact_vecs) @ query
         k2 = min(self.n_facts, k + len(exclude))
-        top = np.argpartition(-sims, k2 - 1)[:k2]
-        top = top[np.argsort(-sims[top], kind="stable")]
+        if self.ivf is not None:
+            top = self.ivf.search(query, k2)
+        else:
+            top = exact_search(self.fact_vecs, query, k2)
         ex = set(int(e) for e in exclude)
         return np.array([t for t in top if int(t) not in ex][:k], np.int64)
 
@@ -313,7 +413,7 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     fv = np.asarray(graph.fact_vecs[facts]) if len(facts) else np.zeros((0, qvec.shape[0]), np.float32)
     rv = np.asarray(graph.relation_vecs[graph.rel[facts]]) if len(facts) else fv
     visited = set(walker.visited) | {e}
-    deg = np.array([graph.degree(int(n)) for n in nexts], np.float32)
+    deg = (graph.adj_ptr[nexts + 1] - graph.adj_ptr[nexts]).astype(np.float32)
     kind = graph.rel[facts].astype(np.int64) * 2 + dirs
     _, kinv, kcnt = np.unique(kind, return_inverse=True, return_counts=True)
     kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)

@@ -1,7 +1,8 @@
-"""Writing files atomically: a reader sees the old file or the new one, never half of one."""
+"""Writing files and folders atomically: a reader sees the old one or the new one, never half of one."""
 from __future__ import annotations
 
 import os
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -24,3 +25,27 @@ def write_atomic(path, data: bytes, mode: int = 0o644) -> None:
         except OSError:
             pass
         raise
+
+
+def publish_folder(build, final_dir, done_name: str) -> None:
+    """Run build(tmp_dir) in a fresh hidden folder beside final_dir, then rename it into place.
+
+    Readers see the whole folder or none of it; of two racing builders one wins and the
+    other's copy is dropped (``done_name`` is the file that marks a finished folder).
+    """
+    final_dir = Path(final_dir)
+    final_dir.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=".build-", dir=final_dir.parent))
+    try:
+        build(tmp)
+        # mkdtemp (and some writers) make owner-only files; a cache is as readable as any other.
+        os.chmod(tmp, 0o755)
+        for f in tmp.iterdir():
+            os.chmod(f, 0o644)
+        try:
+            os.replace(tmp, final_dir)
+        except OSError:
+            if not (final_dir / done_name).is_file():  # not a rival's finished copy
+                raise
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)

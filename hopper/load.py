@@ -16,6 +16,7 @@ import duckdb
 
 from .errors import InputError
 from .files import write_atomic
+from .pending import CHUNK, PendingVectors
 from .store import Store, first
 
 REQUIRED = ("subject", "relation", "object")
@@ -44,6 +45,7 @@ class LoadReport:
     entities_added: int = 0
     relations_added: int = 0
     embedded: int = 0
+    reused: int = 0               # vectors an interrupted run of the same load had saved
 
     def as_dict(self) -> dict:
         return dict(self.__dict__)
@@ -504,6 +506,7 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     # Phase A (no lock held for long): find what is new, and embed it before writing.
     encoder = encoder or embed.Encoder("auto")
     known_vectors: dict[str, object] = {}
+    pending = PendingVectors(store.path, identity["weights_sha256"])
 
     def new_items(con):
         stage.execute("CREATE OR REPLACE TABLE have_hash (content_hash VARCHAR)")
@@ -538,11 +541,29 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
                           ("SELECT name FROM new_entities", lambda t: t),
                           ("SELECT name FROM new_relations", lambda t: t.replace("_", " "))):
             texts += [make(r[0]) for r in stage.execute(sql).fetchall()]
-        todo = sorted({t for t in texts if t not in known_vectors})
-        if todo:
-            vecs = encoder.encode(todo, progress=progress)
-            known_vectors.update(zip(todo, vecs))
-            report.embedded += len(todo)
+        # Shortest first: a chunk holds texts of similar length, so its batches pad little.
+        todo = sorted({t for t in texts if t not in known_vectors}, key=lambda t: (len(t), t))
+        if not todo:
+            return
+        # Vectors an interrupted run of this load saved are reused; the rest is embedded in
+        # chunks, each saved beside the store as soon as it is done (see hopper/pending.py).
+        saved = pending.read(set(todo))
+        known_vectors.update(saved)
+        report.reused += len(saved)
+        todo = [t for t in todo if t not in saved]
+        bar = _progress_bar(progress, len(todo))
+        try:
+            for a in range(0, len(todo), CHUNK):
+                chunk = todo[a:a + CHUNK]
+                vecs = encoder.encode(chunk)
+                pending.save(chunk, vecs)
+                known_vectors.update(zip(chunk, vecs))
+                report.embedded += len(chunk)
+                if bar is not None:
+                    bar.update(len(chunk))
+        finally:
+            if bar is not None:
+                bar.close()
 
     if store.exists():
         with store.connect() as con:
@@ -564,7 +585,18 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
                 except OSError:
                     pass
         raise
+    pending.clear()  # committed: the vectors are in the store now
     return report
+
+
+def _progress_bar(progress: bool, total: int):
+    if not (progress and total and sys.stderr is not None and sys.stderr.isatty()):
+        return None
+    try:
+        from tqdm import tqdm
+    except ImportError:
+        return None
+    return tqdm(total=total, desc="embedding", unit="text", file=sys.stderr)
 
 
 def _write(store, stage, report, identity, new_items, embed_missing, known_vectors):
@@ -615,11 +647,13 @@ def _write(store, stage, report, identity, new_items, embed_missing, known_vecto
                 JOIN relations r ON r.name = n.relation JOIN entities o ON o.name = n.object""",
                         [f0, load_id])
             con.unregister("t_new")
-            vec = np.stack([known_vectors[r[0]] for r in fact_rows])
-            tab = _vectors_table(np.arange(f0 + 1, f0 + 1 + len(fact_rows)), vec, "fact_id")
-            con.register("t_vec", tab)
-            con.execute("INSERT INTO fact_vectors SELECT fact_id, embedding FROM t_vec")
-            con.unregister("t_vec")
+            for a in range(0, len(fact_rows), 65536):  # in slices: one copy of all vectors is enough
+                part = fact_rows[a:a + 65536]
+                vec = np.stack([known_vectors[r[0]] for r in part])
+                tab = _vectors_table(np.arange(f0 + 1 + a, f0 + 1 + a + len(part)), vec, "fact_id")
+                con.register("t_vec", tab)
+                con.execute("INSERT INTO fact_vectors SELECT fact_id, embedding FROM t_vec")
+                con.unregister("t_vec")
             added = first(con.execute("SELECT count(*) FROM facts WHERE load_id = ?", [load_id]))[0]
             if added != len(fact_rows):  # the joins above must match every new fact
                 raise RuntimeError(f"internal: {added} of {len(fact_rows)} facts stored")

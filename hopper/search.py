@@ -48,9 +48,13 @@ class _Beam:
     steps: tuple = ()
 
 
-def _alternatives(probs: np.ndarray, facts: np.ndarray, chosen: int) -> list:
-    """The best options passed over at one hop: index 0 is STOP, index j > 0 is facts[j - 1]."""
-    order = np.argsort(-probs, kind="stable")
+def _alternatives(probs: np.ndarray, facts: np.ndarray, chosen: int, order=None) -> list:
+    """The best options passed over at one hop: index 0 is STOP, index j > 0 is facts[j - 1].
+
+    ``order``: ``probs`` sorted best first, when the caller has it already.
+    """
+    if order is None:
+        order = np.argsort(-probs, kind="stable")
     out = []
     for j in order:
         if j == chosen or (j > 0 and facts[j - 1] < 0):
@@ -100,22 +104,29 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
         logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(x[None, :], n, 0),
                                np.stack([b.h for b in live]), np.full(n, t), batch,
                                qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1))
-        nxt: list[_Beam] = []
+        # Score every expansion first; build walkers, memories and alternatives only for the
+        # `beam` that survive (the same ones, in the same order, as building all of them).
+        expansions: list[tuple[float, int, int]] = []
         for i, b in enumerate(live):
             lp = logp[i]
-            probs = np.exp(lp)
             finished.append(_Beam(b.walker, b.h, b.logp + float(lp[0]), b.steps))
-            c = cands[i]
-            order = np.argsort(-lp[1:1 + len(c.facts)], kind="stable")[:beam]
-            for j in order:
-                f, d, e = int(c.facts[j]), int(c.dirs[j]), int(c.nexts[j])
-                fetch = Fetch(t, f, d, float(probs[1 + j]), b.walker.entity, e,
-                              _alternatives(probs, batch["facts"][i], 1 + int(j)))
-                w = Walker(e, b.walker.fetched + (f,), b.walker.visited + (e,))
-                h = pol.next_memory(P, ops, b.h, crepr[i, j])
-                nxt.append(_Beam(w, h, b.logp + float(lp[1 + j]), b.steps + (fetch,)))
-        nxt.sort(key=lambda b: -b.logp)
-        live = nxt[:beam]
+            order = np.argsort(-lp[1:1 + len(cands[i].facts)], kind="stable")[:beam]
+            expansions += [(b.logp + float(lp[1 + j]), i, int(j)) for j in order]
+        expansions.sort(key=lambda x: -x[0])
+        nxt: list[_Beam] = []
+        ranked: dict = {}  # per walker: its options sorted best first, for the alternatives
+        for lpj, i, j in expansions[:beam]:
+            b, c = live[i], cands[i]
+            probs = np.exp(logp[i])
+            if i not in ranked:
+                ranked[i] = np.argsort(-probs, kind="stable")
+            f, d, e = int(c.facts[j]), int(c.dirs[j]), int(c.nexts[j])
+            fetch = Fetch(t, f, d, float(probs[1 + j]), b.walker.entity, e,
+                          _alternatives(probs, batch["facts"][i], 1 + j, ranked[i]))
+            w = Walker(e, b.walker.fetched + (f,), b.walker.visited + (e,))
+            h = pol.next_memory(P, ops, b.h, crepr[i, j])
+            nxt.append(_Beam(w, h, lpj, b.steps + (fetch,)))
+        live = nxt
     finished += live  # the hop limit ends every walk where it stands
     scores: dict = {}
     best: dict = {}
