@@ -98,3 +98,19 @@ def test_reinforce_gradient_matches_exact_gradient(tiny_graph):
     assert np.all(np.abs(mean - exact) <= 4 * se + 1e-3), np.max(np.abs(mean - exact) - 4 * se)
     cos = mean @ exact / (np.linalg.norm(mean) * np.linalg.norm(exact))
     assert cos > 0.97, cos
+
+
+def test_sentence_dropout_hides_only_the_sentence_view_of_about_p_of_the_questions():
+    # Common practice (input dropout): with p = 0.5 about half the questions lose their first
+    # k features (the sentence view) and keep the rest (the word bag); the inputs stay as they were.
+    rng = np.random.default_rng(0)
+    eps = [object() for _ in range(400)]
+    qx = {id(e): np.arange(1.0, 7.0, dtype=np.float32) for e in eps}
+    out = tr._drop_sentence(qx, eps, 4, 0.5, rng)
+    hidden = [np.all(out[id(e)][:4] == 0) for e in eps]
+    assert 0.42 < np.mean(hidden) < 0.58
+    for e, h in zip(eps, hidden):
+        assert np.array_equal(out[id(e)][4:], [5.0, 6.0])
+        assert h or np.array_equal(out[id(e)], qx[id(e)])
+        assert np.array_equal(qx[id(e)], np.arange(1.0, 7.0))
+    assert tr._drop_sentence(qx, eps, 4, 0.0, rng) is qx
