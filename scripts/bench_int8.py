@@ -77,7 +77,7 @@ def main():
     hp._encoder = int8
     got = hp.evaluate(rows)["strategies"]
 
-    print(f"| figure | fp32 | int8 | change |\n|---|---|---|---|")
+    print("| figure | fp32 | int8 | change |\n|---|---|---|---|")
     print(f"| encode {len(sample)} demo fact texts, texts/s | {rates['fp32']:.0f} | {rates['int8']:.0f} | "
           f"{rates['int8'] / rates['fp32']:.2f}x |")
     print(f"| cosine int8 vs fp32, facts (min / mean) | 1 | {cos_f.min():.4f} / {cos_f.mean():.4f} | |")
