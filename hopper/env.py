@@ -389,8 +389,9 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
         if prerank_cache is not None:
             prerank_cache[key] = (facts, dirs)
     fetched = set(walker.fetched)
-    keep = [i for i, f in enumerate(facts) if int(f) not in fetched and int(f) not in hidden]
-    facts, dirs = facts[keep], dirs[keep]
+    if fetched or hidden:
+        keep = ~np.isin(facts, np.fromiter(fetched | set(hidden), np.int64))
+        facts, dirs = facts[keep], dirs[keep]
     is_dense = np.zeros(len(facts), np.float32)
     if dense and hop == 0 and graph.n_facts:  # at the start only: recovers a poor entity link
         dkey = ("dense", walker.fetched)
@@ -431,8 +432,8 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
         rv @ qvec,                                               # relation similar to the question
         dirs.astype(np.float32),                                 # inverse direction
         is_dense,                                                # offered by dense search
-        np.array([n in visited for n in nexts], np.float32),     # goes back somewhere visited
-        np.array([n in linked for n in nexts], np.float32),      # goes to an entity the question names
+        np.isin(nexts, np.fromiter(visited, np.int64)).astype(np.float32),  # goes back somewhere visited
+        np.isin(nexts, np.fromiter(linked, np.int64)).astype(np.float32),   # goes to an entity the question names
         np.log1p(deg) / 5.0,                                     # how connected the next entity is
         np.full(len(facts), (hop + 1) / max_hops, np.float32),   # how far into the walk
         -np.log(kind_count),                                     # share of its (relation, direction) kind

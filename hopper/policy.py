@@ -11,15 +11,25 @@ probabilities.
                     (b - w_mean) w_scale]   (b: soft counts of the training questions' words in
                                             it; a word never seen in training counts for its
                                             nearest training words, see ``word_bag``)
-    state      z_t = tanh(x W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t])  (e_t: where it stands;
+    state      z_t = tanh(x W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t] + N_z[n_t] + N_s[n_0])
+                                                                          (e_t, n_t: where it
+                                                                           stands, n_0: started;
                                                                            r_q: the relation asked,
                                                                            for completion questions)
-    candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c)      (text, relation text,
-                                                                           learned relation vector)
+    candidate  c_a = tanh(v_a W_v + u_r W_u[dir] + E[r, dir] + b_c + N_c[n_a])  (text, relation
+                                                                           text, learned relation
+                                                                           vector; n_a: where it
+                                                                           leads)
     score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
     STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop     (g_t: cheap features)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
+
+``N_c``, ``N_z`` and ``N_s`` are learned entity vectors (setting ``entity_embed``, off by default): one row
+per entity known at training time plus a last row shared by every other entity.  Off, both have
+that one row only, zero and not trained, so the policy stays entity-free and carries to
+entities no training question saw; on, it can learn what each entity of a fixed set (UMLS,
+Kinship) is like, as the published walkers do.
 """
 from __future__ import annotations
 
@@ -36,6 +46,7 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
     "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "X"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
+    "N_c": ("N1", "H"), "N_z": ("N1", "H"), "N_s": ("N1", "H"),
 }
 
 
@@ -69,6 +80,13 @@ class NumpyOps:
     def asarray(x, like=None):
         return np.asarray(x)
 
+    @staticmethod
+    def scatter(n, index, values, fill):
+        """A length-n vector of ``fill`` with ``values`` at ``index``."""
+        out = np.full(n, fill, dtype=values.dtype)
+        out[index] = values
+        return out
+
 
 class TorchOps:
     """The array interface on torch (training)."""
@@ -87,6 +105,10 @@ class TorchOps:
 
     def log_softmax(self, x):
         return self.torch.log_softmax(x, dim=-1)
+
+    def scatter(self, n, index, values, fill):
+        out = self.torch.full((n,), fill, dtype=values.dtype)
+        return out.index_put((self.torch.as_tensor(index),), values)
 
     def asarray(self, x, like=None):
         if isinstance(x, self.torch.Tensor):
@@ -164,11 +186,12 @@ def question_features(P: dict, qstate, word_vecs) -> np.ndarray:
 
 
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int,
-                basis=None, words=None) -> dict:
+                basis=None, words=None, n_entities: int = 0) -> dict:
     """Small random weights (scaled by fan-in), as float32 numpy arrays.
 
     ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they
     are.  ``words`` is (w_vocab, w_mean, w_scale) from ``word_basis``; without it no words.
+    ``n_entities`` > 0 gives that many rows of learned entity vectors (zero at the start).
     """
     rng = np.random.default_rng(seed)
     q_mean, q_proj = basis if basis is not None else (np.zeros(dim, np.float32),
@@ -177,7 +200,7 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
         np.zeros((0, dim), np.float32), np.zeros(0, np.float32), np.zeros(0, np.float32))
     sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
              "R1": n_relations + 1, "K": q_proj.shape[1], "V": w_vocab.shape[0],
-             "X": q_proj.shape[1] + w_vocab.shape[0]}
+             "X": q_proj.shape[1] + w_vocab.shape[0], "N1": n_entities + 1}
     params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32),
               "w_vocab": np.asarray(w_vocab, np.float32), "w_mean": np.asarray(w_mean, np.float32),
               "w_scale": np.asarray(w_scale, np.float32)}
@@ -185,7 +208,7 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
         if name in FIXED:
             continue
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
-        if name.startswith("b_") or name in ("w_g", "Q", "u_stop"):
+        if name.startswith("b_") or name in ("w_g", "Q", "u_stop", "N_c", "N_z", "N_s"):
             params[name] = np.zeros(shp, np.float32)
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
@@ -214,30 +237,65 @@ def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> n
     return np.where((rel >= 0) & (rel < n_relations), slot, 2 * n_relations)
 
 
-def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot):
+def candidate_repr(P: dict, ops, fact_vecs, inv, rel_vecs, rel, direction, slot, ent=None):
     """c_a for a flat list of N candidates.
 
     fact_vecs [U, D] are the distinct fetchable facts' text vectors and ``inv`` [N] picks each
     candidate's row; rel_vecs [R, D] are the relation-name vectors, ``rel`` [N] the candidate's
-    relation row, ``direction`` [N] 0/1, ``slot`` [N] its row of ``E``.  Returns [N, H].
+    relation row, ``direction`` [N] 0/1, ``slot`` [N] its row of ``E``, ``ent`` [N] the row of
+    ``N_c`` of the entity it leads to (None: the shared row).  Returns [N, H].
     """
     fv = (fact_vecs @ P["W_v"])[ops.asarray(inv)]
     rel, direction = ops.asarray(rel), ops.asarray(direction)
     u = ops.where(direction[:, None] == 0, (rel_vecs @ P["W_u"][0])[rel],
                   (rel_vecs @ P["W_u"][1])[rel])
-    return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"])
+    n_c = P["N_c"][ops.asarray(ent)] if ent is not None else P["N_c"][-1]
+    return ops.tanh(fv + u + P["E"][ops.asarray(slot)] + P["b_c"] + n_c)
 
 
-def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats):
+class Reprs:
+    """Candidate representations c_a kept for the real candidates only (no padding rows).
+
+    A batch pads every walker to the longest candidate list; on dense graphs (UMLS: degree 20
+    to 320) most of a padded [B, C, H] block would be padding, computed and differentiated for
+    nothing.  ``flat`` [M, H] holds the real ones, ``at`` [M] their flat place in [B * C] and
+    ``pos`` [B, C] each place's row of ``flat`` (-1: padding).  ``reprs[i, j]`` reads like the
+    padded block would.
+    """
+
+    def __init__(self, ops, flat, at, shape):
+        self.ops, self.flat, self.at = ops, flat, np.asarray(at, np.int64)
+        pos = np.full(shape[0] * shape[1], -1, np.int64)
+        pos[self.at] = np.arange(len(self.at))
+        self.pos = pos.reshape(shape)
+        self.rows = self.at // shape[1]          # the walker of each real candidate
+        self.shape = (shape[0], shape[1], flat.shape[-1])
+
+    def __getitem__(self, key):
+        key = key if isinstance(key, tuple) else (key,)
+        key = tuple(k if isinstance(k, slice) else np.asarray(k) for k in key)
+        return self.flat[self.ops.asarray(self.pos[key])]
+
+
+def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, here_row=None,
+           start_row=None):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
     x [B, X] (from ``question_features``), h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
     (row of ``Q``: the asked relation, the last row for questions in words), hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
-    (False = padding), stop_feats [B, G]  ->  log pi [B, 1 + C].
+    (False = padding), stop_feats [B, G], here_row / start_row [B] (rows of ``N_z`` / ``N_s``:
+    where each walker stands / started; None: the shared row)  ->  log pi [B, 1 + C].
     """
+    n_z = P["N_z"][ops.asarray(here_row)] if here_row is not None else P["N_z"][-1]
+    n_z = n_z + (P["N_s"][ops.asarray(start_row)] if start_row is not None else P["N_s"][-1])
     z = ops.tanh(x @ P["W_q"] + h @ P["W_h"] + here @ P["W_e"] + P["Q"][ops.asarray(qrel)]
-                 + P["b_hop"][ops.asarray(hop)])
-    s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
+                 + P["b_hop"][ops.asarray(hop)] + n_z)
+    if isinstance(cand, Reprs):  # real candidates only, scattered into the padded [B, C]
+        B, C, H = cand.shape
+        s_real = (cand.flat * z[ops.asarray(cand.rows)]).sum(-1) / np.sqrt(H)
+        s = ops.scatter(B * C, cand.at, s_real, NEG).reshape(B, C) + feats @ P["w_f"]
+    else:
+        s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s = ops.where(ops.asarray(mask), s, NEG)
     s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (x * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
               + stop_feats @ P["w_g"][:, None] + P["b_stop"])
@@ -268,6 +326,14 @@ class Policy:
     @property
     def threshold(self) -> float:
         return float(self.settings.get("threshold", 0.0))
+
+    def entity_map(self, graph_entities: list[str]) -> np.ndarray | None:
+        """Graph entity index -> row of the learned entity vectors (None when it has none)."""
+        names = self.settings.get("entities")
+        if not names:
+            return None
+        index = {n: i for i, n in enumerate(names)}
+        return np.array([index.get(n, len(names)) for n in graph_entities], np.int64)
 
     def relation_map(self, graph_relations: list[str]) -> np.ndarray:
         """Graph relation index -> the policy's relation index (-1: unknown to the policy)."""
@@ -313,6 +379,9 @@ class Policy:
             dim = params["q_proj"].shape[0]
             params |= {"w_vocab": np.zeros((0, dim), np.float32),
                        "w_mean": np.zeros(0, np.float32), "w_scale": np.zeros(0, np.float32)}
+        if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
+            hid = params["W_h"].shape[0]
+            params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}
         missing = set(PARAM_SHAPES) - set(params)
         if missing:
             from .errors import InputError
@@ -321,28 +390,43 @@ class Policy:
         return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
 
 
-def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None):
-    """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H]).
+def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None,
+         entmap: np.ndarray | None = None, start=None):
+    """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H] as
+    ``Reprs``).
 
     ``batch`` comes from ``env.pad_candidates``; ``relmap`` maps the graph's relations to the
-    policy's; ``qrel`` [B] is the policy's index of each walker's asked relation (-1: none).  Training (torch) and search (numpy) both call this, so they share every number.
+    policy's; ``qrel`` [B] is the policy's index of each walker's asked relation (-1: none);
+    ``entmap`` maps the graph's entities to rows of the learned entity vectors (None: the policy
+    has none), ``start`` [B] is where each walker started (graph index; None: not given).  Training (torch) and search (numpy) both call this, so they share every number.
     """
     facts = batch["facts"]
     B, C = facts.shape
     flat = facts.reshape(-1)
     real = flat >= 0
-    uniq, inv = np.unique(np.where(real, flat, 0), return_inverse=True)
+    at = np.flatnonzero(real)
+    rf = flat[at]
+    uniq, inv = np.unique(rf, return_inverse=True)
     fv = ops.asarray(np.asarray(graph.fact_vecs[uniq], np.float32))
     rv = ops.asarray(np.asarray(graph.relation_vecs, np.float32))
-    rel = graph.rel[np.where(real, flat, 0)].astype(np.int64)
-    dirs = batch["dirs"].reshape(-1).astype(np.int64)
+    rel = graph.rel[rf].astype(np.int64)
+    dirs = batch["dirs"].reshape(-1)[at].astype(np.int64)
     slot = relation_slot(relmap[rel] if len(relmap) else np.full_like(rel, -1), dirs,
                          (P["E"].shape[0] - 1) // 2)
-    cand = candidate_repr(P, ops, fv, inv.reshape(-1), rv, rel, dirs, slot).reshape(B, C, -1)
+    ent = here_row = start_row = None
+    if entmap is not None:
+        if start is not None:
+            start_row = entmap[np.asarray(start, np.int64)]
+        nxt = np.where(dirs == 0, graph.obj[rf], graph.subj[rf])
+        ent = entmap[nxt.astype(np.int64)]
+        here_row = entmap[np.asarray(batch["here"], np.int64)]
+    cand = Reprs(ops, candidate_repr(P, ops, fv, inv.reshape(-1), rv, rel, dirs, slot, ent),
+                 at, (B, C))
     here = ops.asarray(np.asarray(graph.entity_vecs[batch["here"]], np.float32))
     n_q = P["Q"].shape[0] - 1
     qrel = np.full(B, -1) if qrel is None else np.asarray(qrel, np.int64)
     qrel = np.where((qrel >= 0) & (qrel < n_q), qrel, n_q)
     logp = scores(P, ops, x, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
-                  ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]))
+                  ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]), here_row,
+                  start_row)
     return logp, cand

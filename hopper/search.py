@@ -86,6 +86,7 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
     ops = pol.NumpyOps
     T = min(max_hops or policy.max_hops, policy.max_hops)
     relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
+    entmap = _entity_map(policy, graph)
     linked = frozenset(starts)
     H = P["W_h"].shape[0]
     x = pol.question_features(P, ep.qstate, ep.word_vecs)
@@ -103,7 +104,8 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
         n = len(live)
         logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(x[None, :], n, 0),
                                np.stack([b.h for b in live]), np.full(n, t), batch,
-                               qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1))
+                               qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1), entmap=entmap,
+                               start=[b.walker.visited[0] for b in live])
         # Score every expansion first; build walkers, memories and alternatives only for the
         # `beam` that survive (the same ones, in the same order, as building all of them).
         expansions: list[tuple[float, int, int]] = []
@@ -135,6 +137,17 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
         scores[e] = scores.get(e, 0.0) + math.exp(b.logp)
         best.setdefault(e, b.steps)
     return _finish(scores, best, starts)
+
+
+def _entity_map(policy: pol.Policy, graph: Graph):
+    """policy.entity_map for this graph, remembered on the policy (None: no entity vectors)."""
+    if not policy.settings.get("entities"):
+        return None
+    cached = policy.__dict__.get("_entmap")
+    if cached is None or cached[0] is not graph:
+        cached = (graph, policy.entity_map(graph.entity_names))
+        policy.__dict__["_entmap"] = cached
+    return cached[1]
 
 
 def _softmax(x: np.ndarray) -> np.ndarray:

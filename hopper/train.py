@@ -51,6 +51,11 @@ class TrainSettings:
     time_budget: float = 0.0    # seconds; 0 = no limit
     sentence_dropout: float = 0.5  # chance a question's sentence view is hidden in a rollout batch
     question_view: str = "both"  # the policy reads the question's sentence vector, its words, or both
+    entity_embed: bool = False  # learn a vector per entity (fixed entity sets, e.g. UMLS); off
+    #                             keeps the policy entity-free, so it carries to unseen entities
+    reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
+    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0
+    scorer_epochs: int = 200    # training epochs of that scorer
 
     def validate(self) -> None:
         checks = {
@@ -63,6 +68,8 @@ class TrainSettings:
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
             "question_view": self.question_view in pol.VIEWS,
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
+            "reward_scorer": self.reward_scorer in ("none", "complex"),
+            "scorer_epochs": self.scorer_epochs >= 1,
         }
         for name, ok in checks.items():
             if not ok:
@@ -88,11 +95,13 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
             gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
-            type_reward: float = 0.0, qx: dict | None = None):
+            type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None):
     """Sample K walks per episode with the torch policy ``P``.
 
     ``qx`` maps id(episode) to its question features (``policy.question_features``);
-    without it they are computed from ``P``'s fixed arrays.
+    without it they are computed from ``P``'s fixed arrays.  ``entmap``: graph entity -> row
+    of the learned entity vectors (None: none).  ``scorer`` (hopper.scorer.Scorer): a walk of a
+    completion question that ends on a wrong entity earns the scorer's probability for it.
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
     final entity [B], fetch counts [B], last hop [B]), with B = len(eps) * K.
@@ -125,7 +134,8 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
         asked = np.array([owner[i].qrel for i in idx])
         qrel = np.where(asked >= 0, relmap[np.maximum(asked, 0)], -1) if len(relmap) else None
         logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch,
-                               qrel=qrel)
+                               qrel=qrel, entmap=entmap,
+                               start=[walkers[i].visited[0] for i in idx])
         with torch.no_grad():
             probs = logp.exp()
             if greedy:
@@ -164,6 +174,11 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
         for i in np.flatnonzero(correct == 0):
             correct[i] = type_reward * max((kind_overlap(graph, int(final[i]), g_) for g_ in owner[i].gold),
                                            default=0.0)
+    if scorer is not None:  # shaping (Lin et al. 2018): a wrong end earns the scorer's belief
+        wrong = np.array([i for i in np.flatnonzero(correct < 1) if owner[i].qrel >= 0], np.int64)
+        if len(wrong):
+            p = scorer.probs([owner[i].starts[0] for i in wrong], [owner[i].qrel for i in wrong])
+            correct[wrong] = np.maximum(correct[wrong], p[np.arange(len(wrong)), final[wrong]])
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
     return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
 
@@ -384,6 +399,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
     rng = np.random.default_rng(settings.seed)
     n_rel = len(graph.relation_names)
     dim = graph.fact_vecs.shape[1]
+    n_ent = len(graph.entity_names) if settings.entity_embed else 0
     if resume_from is None:
         basis = (pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
                  if settings.question_view != "words" else
@@ -393,17 +409,31 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
             *words, vocabulary = pol.word_basis([e.words for e in train_eps],
                                                 [e.word_vecs for e in train_eps])
         init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
-                               basis=basis, words=words)
+                               basis=basis, words=words, n_entities=n_ent)
     else:
         init = {k: resume_from[0][f"param.{k}"] for k in pol.PARAM_SHAPES}  # Adam's order
         vocabulary = list(resume_from[1]["vocabulary"])
+    entmap = np.arange(n_ent) if settings.entity_embed else None
+    scorer = None
+    if settings.reward_scorer == "complex":
+        from .scorer import fit_scorer
+
+        t0 = time.monotonic()
+        scorer = fit_scorer([(e.starts[0], e.qrel, e.gold) for e in train_eps if e.qrel >= 0],
+                            len(graph.entity_names), n_rel, epochs=settings.scorer_epochs,
+                            seed=settings.seed)
+        if log:
+            log(f"reward scorer (ComplEx) fitted in {time.monotonic() - t0:.0f} s")
+    frozen = set(pol.FIXED) | (set() if settings.entity_embed else {"N_c", "N_z", "N_s"})
     qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs) for e in train_eps}
-    P = {k: torch.tensor(v, requires_grad=k not in pol.FIXED) for k, v in init.items()}
-    opt = torch.optim.Adam([v for k, v in P.items() if k not in pol.FIXED], lr=settings.lr)
+    P = {k: torch.tensor(v, requires_grad=k not in frozen) for k, v in init.items()}
+    opt = torch.optim.Adam([v for k, v in P.items() if k not in frozen], lr=settings.lr)
     ops = pol.TorchOps()
     relmap = np.arange(n_rel)
     base_settings = asdict(settings) | {"relations": list(graph.relation_names),
                                         "vocabulary": vocabulary}
+    if settings.entity_embed:
+        base_settings["entities"] = list(graph.entity_names)
     curve = []
     best = (-1.0, -1.0)
     best_params = _numpy_params(P)
@@ -436,13 +466,14 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
                 type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
-                                                       settings.sentence_dropout, rng))
+                                                       settings.sentence_dropout, rng),
+                entmap=entmap, scorer=scorer)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
             opt.zero_grad()
             loss.backward()
-            torch.nn.utils.clip_grad_norm_([v for k, v in P.items() if k not in pol.FIXED],
+            torch.nn.utils.clip_grad_norm_([v for k, v in P.items() if k not in frozen],
                                            settings.grad_clip)
             opt.step()
             rollouts_done += len(correct)

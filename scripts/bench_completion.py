@@ -64,6 +64,18 @@ SETTINGS = {
 }
 
 
+def _setting(text: str, current=None):
+    """A ``--set`` value: typed like the current one, else bool, int, float or text."""
+    if isinstance(current, bool) or text.lower() in ("true", "false"):
+        return text.lower() in ("1", "true", "yes", "on")
+    for kind in (int, float):
+        try:
+            return kind(text)
+        except ValueError:
+            pass
+    return text
+
+
 def log(msg: str) -> None:
     print(msg, file=sys.stderr, flush=True)
 
@@ -387,8 +399,7 @@ def main(argv=None) -> int:
     settings = dict(SETTINGS[args.dataset])
     for kv in args.set:
         k, v = kv.split("=", 1)
-        settings[k] = type(settings[k])(v) if k in settings else \
-            (int(v) if v.lstrip("-").isdigit() else float(v))
+        settings[k] = _setting(v, settings.get(k))
     settings.setdefault("epochs", 1000)
     settings["time_budget"] = args.minutes * 60
     max_hops = int(settings.pop("max_hops"))

@@ -40,6 +40,37 @@ def test_numpy_and_torch_give_the_same_probabilities(tiny_graph):
     assert np.all(p[:, 1:][~batch["mask"]] < 1e-12)
 
 
+def test_entity_vectors_same_on_numpy_and_torch_and_change_the_scores(tiny_graph):
+    torch = pytest.importorskip("torch")
+    rng = np.random.default_rng(1)
+    q = rng.standard_normal(16).astype(np.float32)
+    q /= np.linalg.norm(q)
+    n_ent = len(tiny_graph.entity_names)
+    params = pol.init_params(16, 8, len(tiny_graph.relation_names), 3, seed=5, n_entities=n_ent)
+    assert params["N_c"].shape == (n_ent + 1, 8) and not params["N_c"].any()  # zero at the start
+    params["N_c"] = rng.standard_normal(params["N_c"].shape).astype(np.float32)
+    params["N_z"] = rng.standard_normal(params["N_z"].shape).astype(np.float32)
+    params["N_s"] = rng.standard_normal(params["N_s"].shape).astype(np.float32)
+    batch, n = _batch(tiny_graph, q)
+    relmap = np.arange(len(tiny_graph.relation_names))
+    entmap = np.arange(n_ent)
+    Q, h = np.repeat(q[None], n, 0), np.zeros((n, 8), np.float32)
+    lp_np, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch,
+                        entmap=entmap, start=batch["here"])
+    tp = {k: torch.tensor(v) for k, v in params.items()}
+    ops = pol.TorchOps()
+    lp_t, _ = pol.step(tp, ops, tiny_graph, relmap, ops.asarray(Q), ops.asarray(h),
+                       np.zeros(n, int), batch, entmap=entmap, start=batch["here"])
+    assert np.allclose(np.exp(lp_np), np.exp(lp_t.numpy()), atol=1e-6)
+    shared, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch)
+    assert not np.allclose(np.exp(lp_np), np.exp(shared), atol=1e-3)  # the vectors are read
+    # a policy maps entities by name; names it never saw share the last row
+    policy = pol.Policy(params, {"entities": ["b", "a"]})
+    m = policy.entity_map(["a", "b", "zz"])
+    assert m.tolist() == [1, 0, 2]
+    assert pol.Policy(params, {}).entity_map(["a"]) is None
+
+
 def test_policy_round_trips_through_the_store_without_pickle(tmp_path):
     import duckdb
 
