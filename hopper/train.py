@@ -54,8 +54,11 @@ class TrainSettings:
     entity_embed: bool = False  # learn a vector per entity (fixed entity sets, e.g. UMLS); off
     #                             keeps the policy entity-free, so it carries to unseen entities
     reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
-    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0
+    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0;
+    #                              "complex-softmax": its softmax share among the non-gold entities
     scorer_epochs: int = 200    # training epochs of that scorer
+    expected_final: float = 0.0  # weight of the exact expected reward of the last hop's choice
+    #                              (sum over all its actions, no sampling; 0 = off)
 
     def validate(self) -> None:
         checks = {
@@ -68,8 +71,8 @@ class TrainSettings:
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
             "question_view": self.question_view in pol.VIEWS,
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
-            "reward_scorer": self.reward_scorer in ("none", "complex"),
-            "scorer_epochs": self.scorer_epochs >= 1,
+            "reward_scorer": self.reward_scorer in ("none", "complex", "complex-softmax"),
+            "scorer_epochs": self.scorer_epochs >= 1, "expected_final": self.expected_final >= 0,
         }
         for name, ok in checks.items():
             if not ok:
@@ -95,13 +98,17 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
             gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
-            type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None):
+            type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None,
+            extra: dict | None = None):
     """Sample K walks per episode with the torch policy ``P``.
 
     ``qx`` maps id(episode) to its question features (``policy.question_features``);
     without it they are computed from ``P``'s fixed arrays.  ``entmap``: graph entity -> row
     of the learned entity vectors (None: none).  ``scorer`` (hopper.scorer.Scorer): a walk of a
     completion question that ends on a wrong entity earns the scorer's probability for it.
+    With ``extra`` (a dict) the last hop's expected final reward, summed exactly over all its
+    actions (``end_rewards``), is put in ``extra["expected_final"]`` ([B] tensor, 0 for walks
+    that stopped earlier).
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
     final entity [B], fetch counts [B], last hop [B]), with B = len(eps) * K.
@@ -121,6 +128,7 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     logps, ents = [], []
     active = np.zeros((B, T), np.float32)
     fetches = np.zeros(B, np.int64)
+    exp_final = torch.zeros(B)
     for t in range(T):
         idx = np.flatnonzero(alive)
         step_logp = torch.zeros(B)
@@ -136,6 +144,10 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
         logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch,
                                qrel=qrel, entmap=entmap,
                                start=[walkers[i].visited[0] for i in idx])
+        if extra is not None and t == T - 1:  # every action of the last hop ends the walk
+            R = end_rewards(graph, [owner[i] for i in idx], cands, logp.shape[1], scorer)
+            exp_final = exp_final.index_put((torch.as_tensor(idx),),
+                                            (logp.exp() * ops.asarray(R)).sum(-1))
         with torch.no_grad():
             probs = logp.exp()
             if greedy:
@@ -177,10 +189,43 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     if scorer is not None:  # shaping (Lin et al. 2018): a wrong end earns the scorer's belief
         wrong = np.array([i for i in np.flatnonzero(correct < 1) if owner[i].qrel >= 0], np.int64)
         if len(wrong):
-            p = scorer.probs([owner[i].starts[0] for i in wrong], [owner[i].qrel for i in wrong])
+            starts_, rels_ = [owner[i].starts[0] for i in wrong], [owner[i].qrel for i in wrong]
+            if getattr(scorer, "relative", False):  # softmax over the entities that are not gold
+                z = scorer.logits(starts_, rels_)
+                for row, i in enumerate(wrong):
+                    z[row, list(owner[i].gold)] = -np.inf
+                z = np.exp(z - z.max(1, keepdims=True))
+                p = np.nan_to_num(z / z.sum(1, keepdims=True))
+            else:
+                p = scorer.probs(starts_, rels_)
             correct[wrong] = np.maximum(correct[wrong], p[np.arange(len(wrong)), final[wrong]])
+    if extra is not None:
+        extra["expected_final"] = exp_final
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
     return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
+
+
+def end_rewards(graph: Graph, eps: list, cands: list, width: int, scorer=None) -> np.ndarray:
+    """The final reward of every action [STOP, candidates...] if the walk ended with it: 1 for
+    a gold entity, else the scorer's reward for it (0 without a scorer).  [n, width]."""
+    out = np.zeros((len(eps), width), np.float32)
+    for m, (ep, c) in enumerate(zip(eps, cands)):
+        r = ep.prerank.get("end_reward")
+        if r is None:
+            r = np.zeros(len(graph.entity_names), np.float32)
+            if scorer is not None and ep.qrel >= 0 and ep.starts:
+                z = scorer.logits([ep.starts[0]], [ep.qrel])[0]
+                if getattr(scorer, "relative", False):
+                    z[list(ep.gold)] = -np.inf
+                    z = np.exp(z - z.max())
+                    r = np.nan_to_num(z / z.sum()).astype(np.float32)
+                else:
+                    r = (1.0 / (1.0 + np.exp(-z))).astype(np.float32)
+            r[list(ep.gold)] = 1.0
+            ep.prerank["end_reward"] = r
+        out[m, 0] = r[c.here]
+        out[m, 1:1 + len(c.nexts)] = r[c.nexts]
+    return out
 
 
 def _candidates_cached(graph: Graph, walker: Walker, ep: Episode, t: int, T: int, cap: int):
@@ -415,13 +460,14 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         vocabulary = list(resume_from[1]["vocabulary"])
     entmap = np.arange(n_ent) if settings.entity_embed else None
     scorer = None
-    if settings.reward_scorer == "complex":
+    if settings.reward_scorer != "none":
         from .scorer import fit_scorer
 
         t0 = time.monotonic()
         scorer = fit_scorer([(e.starts[0], e.qrel, e.gold) for e in train_eps if e.qrel >= 0],
                             len(graph.entity_names), n_rel, epochs=settings.scorer_epochs,
                             seed=settings.seed)
+        scorer.relative = settings.reward_scorer == "complex-softmax"
         if log:
             log(f"reward scorer (ComplEx) fitted in {time.monotonic() - t0:.0f} s")
     frozen = set(pol.FIXED) | (set() if settings.entity_embed else {"N_c", "N_z", "N_s"})
@@ -460,6 +506,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         order = rng.permutation(len(train_eps))
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
+        extra: dict = {}
         for bi in range(n_batches):
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
@@ -467,10 +514,13 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
                 type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
                                                        settings.sentence_dropout, rng),
-                entmap=entmap, scorer=scorer)
+                entmap=entmap, scorer=scorer,
+                extra=extra if settings.expected_final > 0 else None)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
+            if settings.expected_final > 0:  # plus the last hop's exact expected reward
+                loss = loss - settings.expected_final * extra["expected_final"].mean()
             opt.zero_grad()
             loss.backward()
             torch.nn.utils.clip_grad_norm_([v for k, v in P.items() if k not in frozen],
