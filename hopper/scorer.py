@@ -43,6 +43,17 @@ def fit_scorer(queries: list, n_entities: int, n_relations: int, epochs: int = 2
     """Fit ComplEx on ``queries``: [(start entity, relation, {answer entities})]."""
     import torch
 
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)  # tiny tensors; more threads only wait for each other on 2 cores
+    try:
+        return _fit(torch, queries, n_entities, n_relations, epochs, dim, lr, batch, smoothing,
+                    dropout, seed, log)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def _fit(torch, queries, n_entities, n_relations, epochs, dim, lr, batch, smoothing, dropout,
+         seed, log) -> Scorer:
     g = torch.Generator().manual_seed(seed)
     starts = torch.as_tensor([q[0] for q in queries], dtype=torch.long)
     rels = torch.as_tensor([q[1] for q in queries], dtype=torch.long)

@@ -321,11 +321,11 @@ def scorer_ranks(hp, train, test, known, entities, epochs: int, seed: int) -> li
     fitted = fit_scorer([(ent(s), rels.index(r), {ent(a) for a in answers})
                          for (s, r), answers in sorted(queries(train).items())],
                         len(graph.entity_names), len(rels), epochs=epochs, seed=seed)
-    names = graph.entity_names
+    names, inside = graph.entity_names, set(entities)
     ranks = []
     for (s, r), golds in sorted(queries(test).items()):
         logits = fitted.logits([ent(s)], [rels.index(r)])[0]
-        scores = {names[i]: float(v) for i, v in enumerate(logits) if names[i] in set(entities)}
+        scores = {names[i]: float(v) for i, v in enumerate(logits) if names[i] in inside}
         for g in sorted(golds):
             ranks.append(filtered_rank(scores, g, known.get((s, r), set()), len(entities)))
     return ranks
