@@ -127,8 +127,8 @@ def test_short_training_beats_relation_frequency(umls, tmp_path):
 
 def test_complex_scorer_learns_a_one_hop_pattern():
     """hopper.scorer fits ComplEx on (start, relation, answers): relation 0 maps entity i to
-    i + 1 (mod 8), relation 1 back; after fitting, each start's answer is ranked first and gets
-    a probability above 0.5 (a fit that learned nothing gives 1/8 each, near 0.5 sigmoid)."""
+    i + 1 (mod 8), relation 1 back; after fitting, each start's answer is ranked first of the 8
+    and gets a probability above 0.5."""
     import numpy as np
 
     from hopper.scorer import fit_scorer
