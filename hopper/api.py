@@ -101,7 +101,7 @@ class Hopper:
         from .load import load
 
         report = load(self.store, files, skip_invalid=skip_invalid, progress=progress,
-                      encoder=self._encoder_for_load())
+                      encoder=self._encoder_now())
         self._graph = None
         try:  # make the fast question encoder now, while torch is loaded anyway
             from . import embed
@@ -121,9 +121,6 @@ class Hopper:
         return self.store.info()
 
     # -- shared pieces ---------------------------------------------------------------------------
-    def _encoder_for_load(self):
-        return self._encoder_now()
-
     def _graph_now(self, build_index: bool = False, also=None):
         """The current graph; ``build_index`` also fits the dense index if missing (sklearn).
 
