@@ -7,7 +7,7 @@ document name is assembled from syllables and codes by a seeded RNG.
 Output (default ``factstores/supply``):
   facts.csv                  id,subject,relation,object,text,source
   questions_train.jsonl      seen wordings, training start entities
-  questions_valid.jsonl      seen wordings, held-out start entities
+  questions_valid.jsonl      held-out start entities, half seen / half new wordings (not the test's)
   questions_test.jsonl       held-out start entities, half seen / half new wordings
   README.md                  description of the scenario and the files
 
@@ -82,8 +82,11 @@ REL_SOURCES = {
 }
 
 # --------------------------------------------------------------------------
-# Question chains: (name, start type, relations, seen templates, new templates)
-# Template index = position in seen + new; "new" ones appear only in test.
+# Question chains: (start type, relations, seen templates, new templates for the test split,
+# new templates for the valid split).  Template index = position in seen + new + valid-new;
+# "seen" ones appear in every split, the test's new ones only in test, the valid split's new
+# ones only in valid (so settings and early stopping can be judged on wordings never
+# trained on without looking at the test's).
 # --------------------------------------------------------------------------
 CHAINS = [
     ("part", ["made by"],
@@ -94,7 +97,9 @@ CHAINS = [
       "Who is the maker of part {e}?",
       "Tell me the vendor that makes part {e}."],
      ["Name the manufacturer responsible for producing component {e}.",
-      "What firm fabricates the item coded {e}?"]),
+      "What firm fabricates the item coded {e}?"],
+     ["Whose plant turns out part {e}?",
+      "Which enterprise produces the part labelled {e}?"]),
     ("supplier", ["based in"],
      ["In which city is {e} based?",
       "Where is {e} based?",
@@ -103,7 +108,9 @@ CHAINS = [
       "Which city does {e} operate from?",
       "Tell me the city where {e} is situated."],
      ["What town hosts the headquarters of {e}?",
-      "{e} keeps its head office in what municipality?"]),
+      "{e} keeps its head office in what municipality?"],
+     ["From what urban centre does {e} run its business?",
+      "Where does {e} have its main seat?"]),
     ("supplier", ["certified by"],
      ["Who certified {e}?",
       "Which auditor certified {e}?",
@@ -112,7 +119,9 @@ CHAINS = [
       "Who audits {e} for its certificate?",
       "Tell me the certifying body of {e}."],
      ["Which assessment organisation vouches for the quality system of {e}?",
-      "Name the inspection body that accredits {e}."]),
+      "Name the inspection body that accredits {e}."],
+     ["Which agency has granted {e} its certification?",
+      "Whose seal of approval does {e} carry?"]),
     ("person", ["reports to"],
      ["Who does {e} report to?",
       "To whom does {e} report?",
@@ -121,7 +130,9 @@ CHAINS = [
       "Who does {e} answer to?",
       "Tell me the superior of {e}."],
      ["Name the direct supervisor of {e}.",
-      "Who is the line boss of {e}?"]),
+      "Who is the line boss of {e}?"],
+     ["Whom does {e} take orders from?",
+      "Who sits above {e} in the hierarchy?"]),
     ("part", ["made by", "based in"],
      ["In which city is the maker of part {e} based?",
       "Where is the company that makes part {e} based?",
@@ -130,7 +141,9 @@ CHAINS = [
       "Which city does the company building part {e} operate from?",
       "Tell me the city where the vendor of part {e} is situated."],
      ["The manufacturer of component {e} has its headquarters in what town?",
-      "Name the home city of the firm that produces item {e}."]),
+      "Name the home city of the firm that produces item {e}."],
+     ["Where does the enterprise producing part {e} have its main seat?",
+      "From what urban centre does the producer of part {e} run its business?"]),
     ("part", ["made by", "certified by"],
      ["Who certified the maker of part {e}?",
       "Which auditor certified the company that makes part {e}?",
@@ -139,7 +152,9 @@ CHAINS = [
       "Who audits the company that builds part {e}?",
       "Tell me the certifying body of the vendor of part {e}."],
      ["Which assessment organisation accredits the manufacturer of component {e}?",
-      "Name the inspection body vouching for whoever fabricates item {e}."]),
+      "Name the inspection body vouching for whoever fabricates item {e}."],
+     ["Which agency granted certification to the producer of part {e}?",
+      "Whose seal of approval does the enterprise behind part {e} carry?"]),
     ("supplier", ["based in", "located in"],
      ["In which country is {e} based?",
       "Which country is the city where {e} is based located in?",
@@ -148,7 +163,9 @@ CHAINS = [
       "In what country is {e} situated?",
       "Tell me the country where {e} is located."],
      ["What nation hosts the headquarters of {e}?",
-      "Name the nation where {e} keeps its head office."]),
+      "Name the nation where {e} keeps its head office."],
+     ["In what land does {e} have its main seat?",
+      "Which land is home to {e}?"]),
     ("assembly", ["contains part", "made by"],
      ["Who makes the parts in assembly {e}?",
       "Which suppliers make the parts contained in assembly {e}?",
@@ -157,7 +174,9 @@ CHAINS = [
       "Who are the makers of the parts that assembly {e} contains?",
       "Tell me the vendors of the parts in assembly {e}."],
      ["Which manufacturers produce the components that go into unit {e}?",
-      "Name the firms fabricating the pieces of module {e}."]),
+      "Name the firms fabricating the pieces of module {e}."],
+     ["Which enterprises produce what assembly {e} is built from?",
+      "Whose plants turn out the parts of assembly {e}?"]),
     ("part", ["made by", "based in", "located in"],
      ["In which country is the maker of part {e} based?",
       "Which country is the city where the maker of part {e} is based located in?",
@@ -166,7 +185,9 @@ CHAINS = [
       "In what country is the company building part {e} situated?",
       "Tell me the country where the vendor of part {e} is located."],
      ["What nation hosts the headquarters of the manufacturer of component {e}?",
-      "Name the nation in which the firm fabricating item {e} keeps its head office."]),
+      "Name the nation in which the firm fabricating item {e} keeps its head office."],
+     ["In what land does the producer of part {e} have its main seat?",
+      "Which land is home to the enterprise producing part {e}?"]),
     ("assembly", ["contains part", "made by", "based in"],
      ["In which cities are the makers of the parts in assembly {e} based?",
       "Where are the suppliers that make the parts of assembly {e} based?",
@@ -175,7 +196,9 @@ CHAINS = [
       "Where are the companies that build the parts of assembly {e} located?",
       "Tell me the cities where the vendors of the parts in assembly {e} are situated."],
      ["In what towns are the manufacturers of the components of unit {e} headquartered?",
-      "Name the home cities of the firms that fabricate pieces going into module {e}."]),
+      "Name the home cities of the firms that fabricate pieces going into module {e}."],
+     ["Where do the producers of the parts of assembly {e} have their main seats?",
+      "From what urban centres do the enterprises behind the parts of assembly {e} run their business?"]),
     ("part", ["made by", "managed by", "reports to"],
      ["Who does the manager of the maker of part {e} report to?",
       "The company that makes part {e} is managed by someone who reports to whom?",
@@ -184,7 +207,9 @@ CHAINS = [
       "Who does the person managing the company that builds part {e} answer to?",
       "Tell me the superior of the manager of the vendor of part {e}."],
      ["Name the direct supervisor of the account handler for the manufacturer of component {e}.",
-      "Who is the line boss of the contact overseeing the firm that fabricates item {e}?"]),
+      "Who is the line boss of the contact overseeing the firm that fabricates item {e}?"],
+     ["Whom does the relationship owner for the producer of part {e} take orders from?",
+      "Who sits above the person looking after the enterprise behind part {e}?"]),
     ("supplier", ["managed by", "works in", "located in"],
      ["In which country does the manager of {e} work?",
       "The person who manages {e} works in a city in which country?",
@@ -193,7 +218,9 @@ CHAINS = [
       "In what country is the city where the manager of {e} works?",
       "Tell me the country where the person managing {e} works."],
      ["What nation is the account handler for {e} employed in?",
-      "Name the nation where the contact overseeing {e} has an office."]),
+      "Name the nation where the contact overseeing {e} has an office."],
+     ["In what land does the relationship owner for {e} have their desk?",
+      "Which land is home to the workplace of the person looking after {e}?"]),
 ]
 
 # --------------------------------------------------------------------------
@@ -484,7 +511,7 @@ def make_questions(con, starts, rng: random.Random):
 
     splits: dict[str, list[dict]] = {k: [] for k in SPLIT_SIZES}
     n_chains = len(CHAINS)
-    for ci, (typ, rels, seen, new) in enumerate(CHAINS):
+    for ci, (typ, rels, seen, new, valid_new) in enumerate(CHAINS):
         answers = chain_answers(con, rels)
         for split, total in SPLIT_SIZES.items():
             want = total // n_chains + (1 if ci < total % n_chains else 0)
@@ -501,7 +528,11 @@ def make_questions(con, starts, rng: random.Random):
                 else:
                     t = rng.randrange(len(seen))
                     wording = "seen"
-                text = (seen + new)[t].format(e=e)
+                    if split == "valid" and k % 2 == 1:  # (the draw above keeps the other
+                        #                                   splits as they were before)
+                        t = len(seen) + len(new) + (k // 2) % len(valid_new)
+                        wording = "new"
+                text = (seen + new + valid_new)[t].format(e=e)
                 text = text[0].upper() + text[1:]
                 splits[split].append({
                     "question": text, "answer": answers[e], "hops": len(rels),
@@ -546,9 +577,11 @@ cities and countries are built from random syllables and codes by
 
 Start entities (parts, suppliers, staff, assemblies) are partitioned 60/15/25
 into train/valid/test pools, so no valid/test start entity is named by any
-training question. The last two templates of each chain are "new" wordings
-(different vocabulary and structure) and occur only in the test split, where
-they make up half of the questions. Gold answers come from SQL joins (duckdb)
+training question. Each chain has two "new" wordings (different vocabulary
+and structure) that occur only in the test split, where they make up half of the
+questions, and two more that occur only in the valid split (half of it), so
+early stopping and settings are judged on wordings never trained on without
+looking at the test's. Gold answers come from SQL joins (duckdb)
 over `facts.csv`.
 
 ## Built-in traps for greedy similarity retrieval
@@ -590,7 +623,7 @@ def write_readme(path: Path, con, entities, splits, seed: int) -> None:
     ent_table += f"\n- total: {sum(len(v) for v in entities.values())} unique names"
     rel_table = "\n".join(f"| `{r}` | {REL_TYPES[r]} | {c} |" for r, c in rel_counts.items())
     chain_lines = ["| hops | chain | start | example (seen) | example (new) |", "|---|---|---|---|---|"]
-    for typ, rels, seen, new in CHAINS:
+    for typ, rels, seen, new, _ in CHAINS:
         chain_lines.append(f"| {len(rels)} | `{'>'.join(rels)}` | {typ} | "
                            f"{seen[0].format(e='X')} | {new[0].format(e='X')} |")
     sizes = ", ".join(f"{k} {len(v)}" for k, v in splits.items())
