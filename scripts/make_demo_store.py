@@ -164,7 +164,7 @@ CHAINS = [
       "Tell me the country where {e} is located."],
      ["What nation hosts the headquarters of {e}?",
       "Name the nation where {e} keeps its head office."],
-     ["In what land does {e} have its main seat?",
+     ["In what jurisdiction does {e} have its main seat?",
       "Which land is home to {e}?"]),
     ("assembly", ["contains part", "made by"],
      ["Who makes the parts in assembly {e}?",
@@ -186,7 +186,7 @@ CHAINS = [
       "Tell me the country where the vendor of part {e} is located."],
      ["What nation hosts the headquarters of the manufacturer of component {e}?",
       "Name the nation in which the firm fabricating item {e} keeps its head office."],
-     ["In what land does the producer of part {e} have its main seat?",
+     ["In what jurisdiction does the producer of part {e} have its main seat?",
       "Which land is home to the enterprise producing part {e}?"]),
     ("assembly", ["contains part", "made by", "based in"],
      ["In which cities are the makers of the parts in assembly {e} based?",
@@ -219,7 +219,7 @@ CHAINS = [
       "Tell me the country where the person managing {e} works."],
      ["What nation is the account handler for {e} employed in?",
       "Name the nation where the contact overseeing {e} has an office."],
-     ["In what land does the relationship owner for {e} have their desk?",
+     ["In what jurisdiction does the relationship owner for {e} have their desk?",
       "Which land is home to the workplace of the person looking after {e}?"]),
 ]
 
