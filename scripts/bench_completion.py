@@ -162,25 +162,26 @@ def question_dicts(qs: dict) -> list[dict]:
     return [{"subject": s, "relation": r, "answer": sorted(a)} for (s, r), a in sorted(qs.items())]
 
 
-# -- hiding the answer fact both ways ----------------------------------------------------------
+# -- answers stated both ways -------------------------------------------------------------------
 @contextlib.contextmanager
 def hide_both_ways():
-    """Hide, for a completion question (subject, R, gold), every fact that states the answer:
-    (subject, R, gold) read forward and (gold, inverse(R), subject) read backwards.  Core
-    ``hidden_facts`` hides only the first; with inverse relation names the second leaks."""
-    from hopper import env, train as tr
+    """The facts that state an answer of a completion question (subject, R) are (subject, R, x)
+    read forward and (x, inverse(R), subject) read backwards; core ``answer_facts`` knows only
+    the first.  hopper.env builds on it what training hides (the answer's facts, or with
+    inverse names the walk reads the answer off the reverse of the hidden fact) and which
+    answers a visible fact already states, so this is on for training and for the test."""
+    from hopper import env
 
-    def hidden(graph, subject, relation, gold):
+    def answer_facts(graph, subject, relation):
         names = graph.relation_names
         want = {(names.index(relation), 0)} if relation in names else set()
         if inverse(relation) in names:
             want.add((names.index(inverse(relation)), 1))
         facts, dirs = graph.neighbours(subject)
-        return frozenset(int(f) for f, d in zip(facts, dirs)
-                         if (int(graph.rel[f]), int(d)) in want
-                         and graph.far_end(int(f), int(d)) in gold)
+        return {int(f): graph.far_end(int(f), int(d)) for f, d in zip(facts, dirs)
+                if (int(graph.rel[f]), int(d)) in want}
 
-    with _patched([(m, "hidden_facts", hidden) for m in (env, tr) if hasattr(m, "hidden_facts")]):
+    with _patched([(env, "answer_facts", answer_facts)]):
         yield
 
 
@@ -283,8 +284,7 @@ def search_hiding(hp, keys, hide: dict, beam: int | None = None) -> list[dict]:
     width = int(beam or policy.settings.get("beam", 16))
     qs = [make_question({"subject": s, "relation": r, "answer": sorted(hide.get((s, r), ())) or
                          ["(none)"]}) for s, r in keys]
-    with hide_both_ways():
-        eps = env.episodes(graph, qs, hp._encode, hide_answers=True)
+    eps = env.episodes(graph, qs, hp._encode, hide_answers=True)
     names = graph.entity_names
     return [{"ranked": [{"answer": names[e], "score": float(sc)} for e, sc in
                         beam_search(graph, policy, ep, beam=width).ranked]} for ep in eps]
@@ -448,8 +448,9 @@ def main(argv=None) -> int:
         train_s = time.monotonic() - t0
     t0 = time.monotonic()
     prior = relation_prior(train)
-    res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam,
-                       hide=known_answers(train, inverse=inverse) if args.hide_known else None)
+    with hide_both_ways():
+        res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam,
+                           hide=known_answers(train, inverse=inverse) if args.hide_known else None)
     eval_s = time.monotonic() - t0
     ours = ranking_metrics(res["policy"])
     base = ranking_metrics(frequency_ranks(train, test, known, entities))
