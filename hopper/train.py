@@ -523,7 +523,11 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
         extra: dict = {}
+        out_of_time = False
         for bi in range(n_batches):
+            if bi and settings.time_budget and time.monotonic() - started > settings.time_budget:
+                out_of_time = True  # the budget ends this epoch early (long epochs overshot it)
+                break
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
@@ -556,8 +560,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         stale = 0 if vh > best[0] + 1e-9 else stale + 1  # patience counts Hits@1 gains only
         if (vh, vm) > best:
             best, best_params = (vh, vm), _numpy_params(P)
-        finished = (stale >= settings.patience or epoch + 1 == settings.epochs or bool(
-            settings.time_budget and time.monotonic() - started > settings.time_budget))
+        finished = (stale >= settings.patience or epoch + 1 == settings.epochs or out_of_time or
+                    bool(settings.time_budget and time.monotonic() - started > settings.time_budget))
         if save_checkpoint is not None:
             save_checkpoint(*snapshot(P, opt, gen, rng, epoch + 1, finished, curve, best,
                                       best_params, stale, rollouts_done,
