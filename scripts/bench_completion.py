@@ -13,10 +13,11 @@ inverse relation on a separate anchor entity that touches nothing else (and is l
 every ranking); ``--inverse facts`` adds an inverse twin (o, r_inverse, s) for every train
 triple instead (this doubles every entity's degree).
 
-Two things are patched in for the run (recommended for the core; see each function):
-``hide_both_ways``: during training the fact stating a question's answer is hidden
-(hopper.env.hidden_facts), and for head queries and inverse twins it must be hidden in both
-directions, or the walk reads the answer off the reverse of the hidden fact.
+Two things are patched in for the run (see each function):
+``hide_both_ways``: with inverse relation names a fact states an answer read either way
+(hopper.env.answer_facts knows only the forward one): in training the fact of the hidden
+answer must be hidden in both directions, or the walk reads the answer off its reverse, and in
+training and test the walk must see which answers visible facts already state (env.Episode.stated).
 ``filtered_validation``: early stopping on filtered Hits@1 / MRR (train + valid answers
 filtered), as the test metric is; ``--core-validation`` turns it off.
 """
