@@ -20,10 +20,12 @@ probabilities.
                                                                            text, learned relation
                                                                            vector; n_a: where it
                                                                            leads)
-    score      s_a = z_t . c_a / sqrt(H) + f_a . w_f + k_a w_known[0]      (f_a: cheap features;
+    score      s_a = z_t . c_a / sqrt(H) + f_a . w_f + k_a w_known[t, 0]   (f_a: cheap features;
                                                                            k_a: 1 if a leads to an
-                                                                           answer a fact states)
-    STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop + k_0 w_known[1]
+                                                                           answer a fact states:
+                                                                           a way on at hop 0, a
+                                                                           dead end at the last)
+    STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop + k_0 w_known[t, 1]
                                                                           (g_t: cheap features;
                                                                            k_0: stands on one)
     policy     pi(a | state) = softmax(s)
@@ -51,7 +53,7 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
     "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "X"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
     "N_c": ("N1", "H"), "N_z": ("N1", "H"), "N_s": ("N1", "H"),
-    "w_known": (2,),
+    "w_known": ("T", 2),
 }
 
 
@@ -305,9 +307,10 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
         s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
     s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (x * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
               + stop_feats @ P["w_g"][:, None] + P["b_stop"])
-    if known is not None:
-        s = s + ops.asarray(known[0]) * P["w_known"][0]
-        s_stop = s_stop + ops.asarray(known[1])[:, None] * P["w_known"][1]
+    if known is not None:  # weights per hop
+        wk = P["w_known"][ops.asarray(hop)]
+        s = s + ops.asarray(known[0]) * wk[:, 0:1]
+        s_stop = s_stop + ops.asarray(known[1])[:, None] * wk[:, 1:2]
     s = ops.where(ops.asarray(mask), s, NEG)
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 
@@ -392,8 +395,8 @@ class Policy:
         if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
             hid = params["W_h"].shape[0]
             params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}
-        if "w_known" not in params:  # made before policies saw which answers are stated
-            params["w_known"] = np.zeros(2, np.float32)
+        if "w_known" not in params and "b_hop" in params:  # made before policies saw stated answers
+            params["w_known"] = np.zeros((params["b_hop"].shape[0], 2), np.float32)
         missing = set(PARAM_SHAPES) - set(params)
         if missing:
             from .errors import InputError

@@ -132,8 +132,8 @@ def test_stated_answers_change_scores_alike_on_numpy_and_torch(tiny_graph):
     q = rng.standard_normal(16).astype(np.float32)
     q /= np.linalg.norm(q)
     params = pol.init_params(16, 8, len(tiny_graph.relation_names), 3, seed=5)
-    assert params["w_known"].shape == (2,) and not params["w_known"].any()
-    params["w_known"] = np.array([-3.0, 2.0], np.float32)
+    assert params["w_known"].shape == (4, 2) and not params["w_known"].any()  # per hop
+    params["w_known"][0] = [-3.0, 2.0]  # (the batch is at hop 0)
     batch, n = _batch(tiny_graph, q)
     relmap = np.arange(len(tiny_graph.relation_names))
     Q, h = np.repeat(q[None], n, 0), np.zeros((n, 8), np.float32)
