@@ -61,7 +61,7 @@ PUBLISHED = {
 # ~160 (Kinship) facts, so the cap on facts offered per hop is raised to the largest degree).
 # Learned entity vectors and ComplEx reward shaping are on for both (hopper.train.TrainSettings:
 # entity_embed, reward_scorer).  UMLS trains one episode per stated answer (the default,
-# completion_episodes="one-answer": 0.297 -> 0.761 Hits@1); on Kinship that failed (valid
+# completion_episodes="one-answer": 0.297 -> 0.69-0.76 Hits@1); on Kinship that failed (valid
 # Hits@1 0.02 after one epoch, the walk near uniform over ~160 facts a hop with one rewarded
 # end among 104), so Kinship keeps every answer of a query hidden at once ("all-answers").
 SETTINGS = {
