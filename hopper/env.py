@@ -8,7 +8,7 @@ import shutil
 import tempfile
 import unicodedata
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -498,17 +498,60 @@ class Episode:
     prerank: dict = field(default_factory=dict)
     words: tuple = ()         # the masked question's words (policy.word_bag reads their vectors)
     word_vecs: np.ndarray | None = None  # [len(words), D]
+    stated: frozenset = frozenset()  # completion questions: answers a visible fact already
+    #                                  states; the policy sees which ends these are (a walk that
+    #                                  ends there tells nothing new) and training rewards them 0
 
 
-def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
-    """The facts that state a completion answer directly, hidden from the walk in training."""
+def answer_facts(graph: Graph, subject: int, relation: str) -> dict:
+    """{fact row: the answer it states} for every fact stating an answer of (subject, relation)."""
     facts, dirs = graph.neighbours(subject)
     try:
         r = graph.relation_names.index(relation)
     except ValueError:
-        return frozenset()
-    return frozenset(int(f) for f, d in zip(facts, dirs)
-                     if d == 0 and graph.rel[f] == r and int(graph.obj[f]) in gold)
+        return {}
+    return {int(f): int(graph.obj[f]) for f, d in zip(facts, dirs) if d == 0 and graph.rel[f] == r}
+
+
+def hidden_facts(graph: Graph, subject: int, relation: str, gold: frozenset) -> frozenset:
+    """The facts that state a completion answer directly, hidden from the walk in training."""
+    return frozenset(f for f, a in answer_facts(graph, subject, relation).items() if a in gold)
+
+
+def stated_answers(graph: Graph, subject: int, relation: str, hidden: frozenset) -> frozenset:
+    """The answers of (subject, relation) that a fact the walk can see already states."""
+    return frozenset(a for f, a in answer_facts(graph, subject, relation).items()
+                     if f not in hidden)
+
+
+def one_answer_each(graph: Graph, eps: list) -> list:
+    """Completion training episodes as the test meets a query: one stated answer hidden.
+
+    A question (s, R, {a1..an}) whose answers the store states becomes n episodes; episode i
+    hides the facts stating a_i (gold: a_i and any answer no fact states) and leaves the
+    others visible, as ``stated``: the store already says them, so ending there earns nothing.
+    Training on all answers hidden at once teaches the walk to find exactly the answers a
+    filtered test removes, on a graph unlike the test's, where the other answers of the same
+    query are visible.  Other episodes pass unchanged.
+    """
+    out = []
+    for ep in eps:
+        if not (ep.starts and ep.qrel >= 0):
+            out.append(ep)
+            continue
+        by_answer: dict = {}
+        for f, a in answer_facts(graph, ep.starts[0], graph.relation_names[ep.qrel]).items():
+            by_answer.setdefault(a, set()).add(f)
+        stated = [a for a in sorted(by_answer) if a in ep.gold]
+        if not stated:
+            out.append(ep)
+            continue
+        unstated = ep.gold - set(stated)
+        for a in stated:
+            out.append(replace(ep, gold=frozenset({a}) | unstated,
+                               hidden=frozenset(by_answer[a]),
+                               stated=frozenset(by_answer) - {a}, prerank={}))
+    return out
 
 
 def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) -> list:
@@ -543,6 +586,8 @@ def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) 
         qrel = graph.relation_names.index(q.relation) if q.is_completion and \
             q.relation in graph.relation_names else -1
         wv = np.array([wvec[w] for w in ws], np.float32).reshape(len(ws), dim)
+        stated = stated_answers(graph, st[0], q.relation, hidden) if (
+            q.is_completion and st) else frozenset()
         out.append(Episode(np.asarray(v, np.float32), qstate, st, gold, hidden, q.hops, qrel,
-                           words=ws, word_vecs=wv))
+                           words=ws, word_vecs=wv, stated=stated))
     return out

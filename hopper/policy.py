@@ -20,8 +20,14 @@ probabilities.
                                                                            text, learned relation
                                                                            vector; n_a: where it
                                                                            leads)
-    score      s_a = z_t . c_a / sqrt(H) + f_a . w_f                       (f_a: cheap features)
-    STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop     (g_t: cheap features)
+    score      s_a = z_t . c_a / sqrt(H) + f_a . w_f + k_a w_known[t, 0]   (f_a: cheap features;
+                                                                           k_a: 1 if a leads to an
+                                                                           answer a fact states:
+                                                                           a way on at hop 0, a
+                                                                           dead end at the last)
+    STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop + k_0 w_known[t, 1]
+                                                                          (g_t: cheap features;
+                                                                           k_0: stands on one)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
 
@@ -47,6 +53,7 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
     "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "X"), "w_g": (N_STOP,), "b_stop": (1,),
     "U_h": ("H", "H"), "U_c": ("H", "H"),
     "N_c": ("N1", "H"), "N_z": ("N1", "H"), "N_s": ("N1", "H"),
+    "w_known": ("T", 2),
 }
 
 
@@ -208,7 +215,7 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
         if name in FIXED:
             continue
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
-        if name.startswith("b_") or name in ("w_g", "Q", "u_stop", "N_c", "N_z", "N_s"):
+        if name.startswith("b_") or name in ("w_g", "Q", "u_stop", "N_c", "N_z", "N_s", "w_known"):
             params[name] = np.zeros(shp, np.float32)
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
@@ -278,13 +285,15 @@ class Reprs:
 
 
 def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, here_row=None,
-           start_row=None):
+           start_row=None, known=None):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
     x [B, X] (from ``question_features``), h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
     (row of ``Q``: the asked relation, the last row for questions in words), hop [B] int, cand [B, C, H] (from ``candidate_repr``), feats [B, C, F], mask [B, C] bool
     (False = padding), stop_feats [B, G], here_row / start_row [B] (rows of ``N_z`` / ``N_s``:
-    where each walker stands / started; None: the shared row)  ->  log pi [B, 1 + C].
+    where each walker stands / started; None: the shared row), known: (k_a [B, C], k_0 [B]),
+    1 where a candidate leads to / the walker stands on an answer a visible fact already states
+    (completion questions; None: none)  ->  log pi [B, 1 + C].
     """
     n_z = P["N_z"][ops.asarray(here_row)] if here_row is not None else P["N_z"][-1]
     n_z = n_z + (P["N_s"][ops.asarray(start_row)] if start_row is not None else P["N_s"][-1])
@@ -296,9 +305,13 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
         s = ops.scatter(B * C, cand.at, s_real, NEG).reshape(B, C) + feats @ P["w_f"]
     else:
         s = (cand * z[:, None, :]).sum(-1) / np.sqrt(cand.shape[-1]) + feats @ P["w_f"]
-    s = ops.where(ops.asarray(mask), s, NEG)
     s_stop = ((z * P["w_stop"]).sum(-1, keepdims=True) + (x * P["u_stop"][ops.asarray(hop)]).sum(-1, keepdims=True)
               + stop_feats @ P["w_g"][:, None] + P["b_stop"])
+    if known is not None:  # weights per hop
+        wk = P["w_known"][ops.asarray(hop)]
+        s = s + ops.asarray(known[0]) * wk[:, 0:1]
+        s_stop = s_stop + ops.asarray(known[1])[:, None] * wk[:, 1:2]
+    s = ops.where(ops.asarray(mask), s, NEG)
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 
 
@@ -382,6 +395,8 @@ class Policy:
         if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
             hid = params["W_h"].shape[0]
             params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}
+        if "w_known" not in params and "b_hop" in params:  # made before policies saw stated answers
+            params["w_known"] = np.zeros((params["b_hop"].shape[0], 2), np.float32)
         missing = set(PARAM_SHAPES) - set(params)
         if missing:
             from .errors import InputError
@@ -391,14 +406,17 @@ class Policy:
 
 
 def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None,
-         entmap: np.ndarray | None = None, start=None):
+         entmap: np.ndarray | None = None, start=None, stated=None):
     """Score one hop for a batch of walkers: (log pi [B, 1 + C], candidate reprs [B, C, H] as
     ``Reprs``).
 
     ``batch`` comes from ``env.pad_candidates``; ``relmap`` maps the graph's relations to the
     policy's; ``qrel`` [B] is the policy's index of each walker's asked relation (-1: none);
     ``entmap`` maps the graph's entities to rows of the learned entity vectors (None: the policy
-    has none), ``start`` [B] is where each walker started (graph index; None: not given).  Training (torch) and search (numpy) both call this, so they share every number.
+    has none), ``start`` [B] is where each walker started (graph index; None: not given);
+    ``stated`` [B] is each walker's set of answers a visible fact already states (completion
+    questions; None: none).  Training (torch) and search (numpy) both call this, so they share
+    every number.
     """
     facts = batch["facts"]
     B, C = facts.shape
@@ -426,7 +444,14 @@ def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=N
     n_q = P["Q"].shape[0] - 1
     qrel = np.full(B, -1) if qrel is None else np.asarray(qrel, np.int64)
     qrel = np.where((qrel >= 0) & (qrel < n_q), qrel, n_q)
+    known = None
+    if stated is not None and any(stated):
+        k_c = np.zeros(B * C, np.float32)
+        nexts = np.where(dirs == 0, graph.obj[rf], graph.subj[rf])
+        k_c[at] = [int(n) in stated[i] for i, n in zip(at // C, nexts)]
+        k_0 = np.array([int(e) in st for e, st in zip(batch["here"], stated)], np.float32)
+        known = (k_c.reshape(B, C), k_0)
     logp = scores(P, ops, x, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]), here_row,
-                  start_row)
+                  start_row, known)
     return logp, cand

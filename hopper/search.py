@@ -105,7 +105,7 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
         logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(x[None, :], n, 0),
                                np.stack([b.h for b in live]), np.full(n, t), batch,
                                qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1), entmap=entmap,
-                               start=[b.walker.visited[0] for b in live])
+                               start=[b.walker.visited[0] for b in live], stated=[ep.stated] * n)
         # Score every expansion first; build walkers, memories and alternatives only for the
         # `beam` that survive (the same ones, in the same order, as building all of them).
         expansions: list[tuple[float, int, int]] = []

@@ -59,6 +59,11 @@ class TrainSettings:
     scorer_epochs: int = 200    # training epochs of that scorer
     expected_final: float = 0.0  # weight of the exact expected reward of the last hop's choice
     #                              (sum over all its actions, no sampling; 0 = off)
+    completion_episodes: str = "one-answer"  # completion questions whose answers facts state:
+    #                              "one-answer": an episode per answer, only its facts hidden,
+    #                              the other answers visible and unrewarded (as a test meets
+    #                              the query, env.one_answer_each); "all-answers": one episode,
+    #                              every answer's facts hidden
 
     def validate(self) -> None:
         checks = {
@@ -73,6 +78,7 @@ class TrainSettings:
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
             "reward_scorer": self.reward_scorer in ("none", "complex", "complex-softmax"),
             "scorer_epochs": self.scorer_epochs >= 1, "expected_final": self.expected_final >= 0,
+            "completion_episodes": self.completion_episodes in ("one-answer", "all-answers"),
         }
         for name, ok in checks.items():
             if not ok:
@@ -143,7 +149,8 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
         qrel = np.where(asked >= 0, relmap[np.maximum(asked, 0)], -1) if len(relmap) else None
         logp, crepr = pol.step(P, ops, graph, relmap, q[idx], h[idx], np.full(len(idx), t), batch,
                                qrel=qrel, entmap=entmap,
-                               start=[walkers[i].visited[0] for i in idx])
+                               start=[walkers[i].visited[0] for i in idx],
+                               stated=[owner[i].stated for i in idx])
         if extra is not None and t == T - 1:  # every action of the last hop ends the walk
             R = end_rewards(graph, [owner[i] for i in idx], cands, logp.shape[1], scorer)
             exp_final = exp_final.index_put((torch.as_tensor(idx),),
@@ -199,6 +206,9 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
             else:
                 p = scorer.probs(starts_, rels_)
             correct[wrong] = np.maximum(correct[wrong], p[np.arange(len(wrong)), final[wrong]])
+    for i in np.flatnonzero(correct < 1):  # an answer a visible fact already states tells nothing
+        if final[i] in owner[i].stated:
+            correct[i] = 0.0
     if extra is not None:
         extra["expected_final"] = exp_final
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
@@ -221,6 +231,7 @@ def end_rewards(graph: Graph, eps: list, cands: list, width: int, scorer=None) -
                     r = np.nan_to_num(z / z.sum()).astype(np.float32)
                 else:
                     r = (1.0 / (1.0 + np.exp(-z))).astype(np.float32)
+            r[list(ep.stated)] = 0.0
             r[list(ep.gold)] = 1.0
             ep.prerank["end_reward"] = r
         out[m, 0] = r[c.here]
@@ -439,6 +450,11 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
     if not train_eps:
         raise InputError("no training question names an entity of the store with a known answer",
                          field="questions", hint="check the questions match the loaded facts")
+    questions = train_eps  # one per question (the question views and the scorer are fitted on these)
+    if settings.completion_episodes == "one-answer":
+        from .env import one_answer_each
+
+        train_eps = one_answer_each(graph, train_eps)
     torch.manual_seed(settings.seed)
     gen = torch.Generator().manual_seed(settings.seed)
     rng = np.random.default_rng(settings.seed)
@@ -446,13 +462,13 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
     dim = graph.fact_vecs.shape[1]
     n_ent = len(graph.entity_names) if settings.entity_embed else 0
     if resume_from is None:
-        basis = (pol.question_basis(np.stack([e.qstate for e in train_eps]), seed=settings.seed)
+        basis = (pol.question_basis(np.stack([e.qstate for e in questions]), seed=settings.seed)
                  if settings.question_view != "words" else
                  (np.zeros(dim, np.float32), np.zeros((dim, 0), np.float32)))
         words, vocabulary = None, []
         if settings.question_view != "sentence":
-            *words, vocabulary = pol.word_basis([e.words for e in train_eps],
-                                                [e.word_vecs for e in train_eps])
+            *words, vocabulary = pol.word_basis([e.words for e in questions],
+                                                [e.word_vecs for e in questions])
         init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
                                basis=basis, words=words, n_entities=n_ent)
     else:
@@ -464,7 +480,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         from .scorer import fit_scorer
 
         t0 = time.monotonic()
-        scorer = fit_scorer([(e.starts[0], e.qrel, e.gold) for e in train_eps if e.qrel >= 0],
+        scorer = fit_scorer([(e.starts[0], e.qrel, e.gold) for e in questions if e.qrel >= 0],
                             len(graph.entity_names), n_rel, epochs=settings.scorer_epochs,
                             seed=settings.seed)
         scorer.relative = settings.reward_scorer == "complex-softmax"
@@ -507,7 +523,11 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
         extra: dict = {}
+        out_of_time = False
         for bi in range(n_batches):
+            if bi and settings.time_budget and time.monotonic() - started > settings.time_budget:
+                out_of_time = True  # the budget ends this epoch early (long epochs overshot it)
+                break
             batch = [train_eps[i] for i in order[bi * settings.batch_questions:(bi + 1) * settings.batch_questions]]
             logp, ent, correct, active, final, fetches, last = rollout(
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
@@ -540,8 +560,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         stale = 0 if vh > best[0] + 1e-9 else stale + 1  # patience counts Hits@1 gains only
         if (vh, vm) > best:
             best, best_params = (vh, vm), _numpy_params(P)
-        finished = (stale >= settings.patience or epoch + 1 == settings.epochs or bool(
-            settings.time_budget and time.monotonic() - started > settings.time_budget))
+        finished = (stale >= settings.patience or epoch + 1 == settings.epochs or out_of_time or
+                    bool(settings.time_budget and time.monotonic() - started > settings.time_budget))
         if save_checkpoint is not None:
             save_checkpoint(*snapshot(P, opt, gen, rng, epoch + 1, finished, curve, best,
                                       best_params, stale, rollouts_done,

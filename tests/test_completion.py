@@ -140,3 +140,42 @@ def test_complex_scorer_learns_a_one_hop_pattern():
     assert p.shape == (n, n) and np.all((p >= 0) & (p <= 1))
     assert all(int(np.argmax(p[i])) == (i + 1) % n for i in range(n))
     assert all(p[i, (i + 1) % n] > 0.5 for i in range(n))
+
+
+def test_one_answer_each_hides_one_stated_answer_per_episode():
+    """A completion question (a, r, {b, c, x}) whose answers b and c facts state becomes two
+    training episodes: each hides only its answer's fact, keeps the other visible as stated,
+    and keeps the answer no fact states (x) as gold.  A walk ending on a stated answer earns
+    nothing, not even shaping."""
+    import numpy as np
+    import torch
+
+    from conftest import make_graph
+    from hopper import policy as pol
+    from hopper import train as tr
+    from hopper.env import Episode, one_answer_each, stated_answers
+
+    g = make_graph([("a", "r", "b"), ("a", "r", "c"), ("b", "s", "c"), ("c", "s", "x"),
+                    ("a", "s", "x")])
+    e = g.entity_index
+    r = g.relation_names.index("r")
+    q = np.ones(16, np.float32) / 4.0
+    ep = Episode(q, q, [e("a")], frozenset({e("b"), e("c"), e("x")}), frozenset({0, 1}),
+                 qrel=r, word_vecs=np.zeros((0, 16), np.float32))
+    eps = one_answer_each(g, [ep])
+    assert [(set(x.gold), set(x.hidden), set(x.stated)) for x in eps] == [
+        ({e("b"), e("x")}, {0}, {e("c")}), ({e("c"), e("x")}, {1}, {e("b")})]
+    assert stated_answers(g, e("a"), "r", frozenset({0})) == {e("c")}
+    words = Episode(q, q, [e("a")], frozenset({e("b")}), word_vecs=np.zeros((0, 16), np.float32))
+    assert one_answer_each(g, [words]) == [words]  # questions in words pass unchanged
+
+    # every walk of episode 0 (gold b, x; c stated) ends on a, b, c or x: only b and x earn
+    P = {k: torch.tensor(v) for k, v in pol.init_params(16, 8, len(g.relation_names), 2,
+                                                        seed=0).items()}
+    out = tr.rollout(P, pol.TorchOps(), g, np.arange(len(g.relation_names)), [eps[0]], 64, 2,
+                     0.0, torch.Generator().manual_seed(0), np.random.default_rng(0),
+                     type_reward=0.3)
+    correct, final = out[2], out[4]
+    assert set(final.tolist()) >= {e("c")}
+    assert np.all(correct[final == e("c")] == 0.0)
+    assert np.all(correct[np.isin(final, [e("b"), e("x")])] == 1.0)

@@ -122,3 +122,34 @@ def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
                                "w_vocab": vocab, "w_mean": mean, "w_scale": scale},
                               np.zeros(5, np.float32), vecs[0])
     assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-3)
+
+
+def test_stated_answers_change_scores_alike_on_numpy_and_torch(tiny_graph):
+    """w_known reads which candidates lead to (and whether the walker stands on) an answer a
+    visible fact already states; numpy and torch agree, and without stated answers it is unread."""
+    torch = pytest.importorskip("torch")
+    rng = np.random.default_rng(2)
+    q = rng.standard_normal(16).astype(np.float32)
+    q /= np.linalg.norm(q)
+    params = pol.init_params(16, 8, len(tiny_graph.relation_names), 3, seed=5)
+    assert params["w_known"].shape == (4, 2) and not params["w_known"].any()  # per hop
+    params["w_known"][0] = [-3.0, 2.0]  # (the batch is at hop 0)
+    batch, n = _batch(tiny_graph, q)
+    relmap = np.arange(len(tiny_graph.relation_names))
+    Q, h = np.repeat(q[None], n, 0), np.zeros((n, 8), np.float32)
+    stated = [frozenset({tiny_graph.entity_index("b")}), frozenset({tiny_graph.entity_index("b")})]
+    lp_np, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch,
+                        stated=stated)
+    tp = {k: torch.tensor(v) for k, v in params.items()}
+    ops = pol.TorchOps()
+    lp_t, _ = pol.step(tp, ops, tiny_graph, relmap, ops.asarray(Q), ops.asarray(h),
+                       np.zeros(n, int), batch, stated=stated)
+    assert np.allclose(np.exp(lp_np), np.exp(lp_t.numpy()), atol=1e-6)
+    plain, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch)
+    # walker 0 stands on a: its fact to b loses mass; walker 1 stands on b: STOP gains
+    j = 1 + int(np.flatnonzero(batch["facts"][0] == 0)[0])  # fact 0 is a -r1-> b
+    assert np.isclose(lp_np[0, j] - lp_np[0, 0], plain[0, j] - plain[0, 0] - 3.0, atol=1e-5)
+    assert np.isclose(lp_np[1, 0] - lp_np[1, 1], plain[1, 0] - plain[1, 1] + 2.0, atol=1e-5)
+    empty, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch,
+                        stated=[frozenset(), frozenset()])
+    assert np.allclose(empty, plain)
