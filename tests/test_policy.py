@@ -122,3 +122,31 @@ def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
                                "w_vocab": vocab, "w_mean": mean, "w_scale": scale},
                               np.zeros(5, np.float32), vecs[0])
     assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-3)
+
+
+def test_candidates_of_a_batch_are_each_walkers_own(tiny_graph):
+    """candidates_batch (beam search, many walkers and questions) gives every walker the
+    facts and features that candidates() gives it alone."""
+    from hopper.env import candidates_batch
+
+    g = tiny_graph
+    rng = np.random.default_rng(1)
+    qs = rng.standard_normal((2, 16)).astype(np.float32)
+    qs /= np.linalg.norm(qs, axis=1, keepdims=True)
+    a, b, d = g.entity_index("a"), g.entity_index("b"), g.entity_index("d")
+    f_ab = int(np.flatnonzero((g.subj == a) & (g.obj == b))[0])
+    walkers = [Walker(a, (), (a,)), Walker(b, (f_ab,), (a, b)), Walker(d, (), (d,))]
+    owner = [0, 0, 1]
+    linked = [frozenset([a]), frozenset([a]), frozenset([d])]
+    hidden = [frozenset(), frozenset(), frozenset([f_ab])]
+    for hop in (0, 1):
+        batch = candidates_batch(g, walkers, qs[owner], hop, 3, linked, hidden, [{}, {}, {}], cap=2)
+        for i, w in enumerate(walkers):
+            c = candidates(g, w, qs[owner[i]], hop, 3, linked[i], hidden[i], cap=2)
+            n = len(c.facts)
+            assert batch["counts"][i] == n and batch["mask"][i].sum() == n
+            assert (batch["facts"][i, :n] == c.facts).all() and (batch["nexts"][i, :n] == c.nexts).all()
+            assert np.allclose(batch["feats"][i, :n], c.feats, atol=1e-6)
+            assert np.allclose(batch["stop_feats"][i], c.stop_feats, atol=1e-6)
+            if i > 0:  # fetched (walker 1) or hidden (walker 2): never offered again
+                assert f_ab not in set(c.facts.tolist())
