@@ -546,10 +546,7 @@ class Hopper:
         table = {}
         for s in strategies:
             rows = []
-            for q, e in zip(qs, eps):
-                t0 = time.perf_counter()
-                out = self._solve(graph, policy, s, q, e)
-                ms = (time.perf_counter() - t0) * 1000
+            for (q, out, ms), e in zip(self._solve_many(graph, policy, s, qs, eps), eps):
                 h1, rr = hits_and_rank(out, e.gold)
                 rows.append((q.hops, h1, rr, out.n_fetches, ms, out.abstained))
             table[s] = _summarise(rows)

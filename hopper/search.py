@@ -95,16 +95,28 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
     return beam_search_many(graph, policy, [ep], beam=beam, max_hops=max_hops, relmap=relmap)[0]
 
 
+QUESTIONS_PER_BATCH = 256  # bounds the arrays of one hop (beams x candidates) for long lists
+
+
 def beam_search_many(graph: Graph, policy: pol.Policy, eps: list, beam: int = BEAM,
                      max_hops: int | None = None, relmap: np.ndarray | None = None) -> list:
     """``beam_search`` for many questions at once: each hop scores the live beams of every
     question in one batch (candidates and the policy's forward pass), so a batch of
     questions costs a few large array operations instead of many small ones.  Each
     question's beams, scores and answers are its own, as if it were searched alone."""
+    relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
+    out: list = []
+    for a in range(0, len(eps), QUESTIONS_PER_BATCH):
+        out += _beam_search_batch(graph, policy, eps[a:a + QUESTIONS_PER_BATCH], beam,
+                                  max_hops, relmap)
+    return out
+
+
+def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
+                       max_hops: int | None, relmap: np.ndarray) -> list:
     P = policy.params
     ops = pol.NumpyOps
     T = min(max_hops or policy.max_hops, policy.max_hops)
-    relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
     entmap = _entity_map(policy, graph)
     cap = int(policy.settings.get("adj_cap", 32))
     H = P["W_h"].shape[0]
