@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .index import IVFIndex, exact_search, mapped, min_facts
+from .index import IVFIndex, exact_search_many, mapped, min_facts
 from .store import Store
 
 _CACHE_LAYOUT = "l2"  # bump when the cache's files change, so old snapshots are not read
@@ -320,15 +320,22 @@ class Graph:
     def dense_search(self, query: np.ndarray, k: int, exclude=()) -> np.ndarray:
         """Facts most similar to ``query``, best first: probes the IVF index when there is
         one (large stores), else an exact scan over the fact vectors."""
+        return self.dense_search_many(np.asarray(query)[None, :], k, [exclude])[0]
+
+    def dense_search_many(self, queries: np.ndarray, k: int, excludes: list) -> list:
+        """``dense_search`` for many queries (one scan, or each probed list scored once)."""
         if self.n_facts == 0:
-            return np.zeros(0, np.int64)
-        k2 = min(self.n_facts, k + len(exclude))
+            return [np.zeros(0, np.int64) for _ in range(len(queries))]
+        ks = [min(self.n_facts, k + len(ex)) for ex in excludes]
         if self.ivf is not None:
-            top = self.ivf.search(query, k2)
+            tops = self.ivf.search_many(queries, ks)
         else:
-            top = exact_search(self.fact_vecs, query, k2)
-        ex = set(int(e) for e in exclude)
-        return np.array([t for t in top if int(t) not in ex][:k], np.int64)
+            tops = exact_search_many(self.fact_vecs, queries, ks)
+        out = []
+        for top, exclude in zip(tops, excludes):
+            ex = set(int(e) for e in exclude)
+            out.append(np.array([t for t in top if int(t) not in ex][:k], np.int64))
+        return out
 
 
 def _cos(a: np.ndarray, b: np.ndarray) -> float:
@@ -426,6 +433,23 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
     parts_f, parts_d, parts_x = [], [], []
     flat_filter = np.zeros(B, bool)  # walkers whose fetched facts are dropped below, in bulk
     dense_now = dense and hop == 0 and graph.n_facts > 0
+    found: dict = {}  # walker -> its dense results, searched for all walkers at once
+    if dense_now:
+        need = [i for i, w in enumerate(walkers)
+                if caches[i] is None or ("dense", w.fetched) not in caches[i]]
+        if need:
+            qs = []
+            for i in need:
+                w = walkers[i]
+                query = qvecs[i] + (np.asarray(graph.fact_vecs[list(w.fetched)]).sum(0)
+                                    if w.fetched else 0.0)
+                qs.append(query / max(float(np.linalg.norm(query)), 1e-9))
+            res = graph.dense_search_many(np.stack(qs).astype(np.float32), DENSE_K + cap,
+                                          [set(walkers[i].fetched) | set(hidden[i]) for i in need])
+            for i, r in zip(need, res):
+                found[i] = r
+                if caches[i] is not None:
+                    caches[i][("dense", walkers[i].fetched)] = r
     for i, w in enumerate(walkers):
         qvec = qvecs[i]
         facts, dirs = _preranked(graph, w.entity, qvec, caches[i], cap)
@@ -437,18 +461,7 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
             flat_filter[i] = True
         is_dense = None
         if dense_now:  # at the start only: recovers a poor entity link
-            cache = caches[i]
-            fetched = set(w.fetched)
-            dkey = ("dense", w.fetched)
-            if cache is not None and dkey in cache:
-                extra = cache[dkey]
-            else:
-                query = qvec + (np.asarray(graph.fact_vecs[list(w.fetched)]).sum(0)
-                                if w.fetched else 0.0)
-                query = query / max(float(np.linalg.norm(query)), 1e-9)
-                extra = graph.dense_search(query, DENSE_K + cap, exclude=fetched | set(hid))
-                if cache is not None:
-                    cache[dkey] = extra
+            extra = found[i] if i in found else caches[i][("dense", w.fetched)]
             offered = set(map(int, facts))
             extra = np.array([f for f in extra if int(f) not in offered][:DENSE_K], np.int64)
             if len(extra):
