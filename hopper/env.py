@@ -364,31 +364,45 @@ class Candidates:
     here: int = -1      # the entity the walker stands on
 
 
-def _preranked(graph: Graph, e: int, qvec: np.ndarray, cache: dict | None, cap: int):
-    """The facts touching ``e``, best first for the question, capped (remembered in ``cache``).
+def _preranked_many(graph: Graph, ents: list, qvecs: np.ndarray, cap: int) -> list:
+    """The facts touching each entity, best first for its question, capped: for many
+    (entity, question vector) pairs, their neighbour lists read as one flat array, scored and
+    sorted together.
 
-    The pre-ranking keeps the best fact of every (relation, direction) kind first, so the
-    policy can always choose any relation, then fills the cap by similarity to the question.
+    Past ``cap`` (hubs, finished one by one) the best fact of every (relation, direction)
+    kind comes first, so the policy can always choose any relation, then the cap is filled
+    by similarity to the question.
     """
-    if cache is not None and e in cache:
-        return cache[e]
-    facts, dirs = graph.neighbours(e)
-    facts = np.asarray(facts, np.int64)
-    dirs = np.asarray(dirs, np.int8)
-    if len(facts) > 0:
-        sims = np.asarray(graph.fact_vecs[facts]) @ qvec
-        order = np.argsort(-sims, kind="stable")
-        if len(facts) > cap:
-            kind = graph.rel[facts[order]].astype(np.int64) * 2 + dirs[order]
+    ents = np.asarray(ents, np.int64)
+    n = len(ents)
+    lo = graph.adj_ptr[ents].astype(np.int64)
+    lens = (graph.adj_ptr[ents + 1] - graph.adj_ptr[ents]).astype(np.int64)
+    total = int(lens.sum())
+    seg = np.repeat(np.arange(n), lens)
+    offs = np.cumsum(lens) - lens
+    pos = np.arange(total) - offs[seg] + lo[seg]
+    facts = np.asarray(graph.adj_fact[pos], np.int64)
+    dirs = np.asarray(graph.adj_dir[pos], np.int8)
+    sims = np.zeros(total, np.float32)
+    for a in range(0, total, _ROW_CHUNK):
+        b = min(total, a + _ROW_CHUNK)
+        sims[a:b] = _rowdot(np.asarray(graph.fact_vecs[facts[a:b]]), qvecs[seg[a:b]])
+    order = np.lexsort((np.arange(total), -sims, seg))  # per pair, best first, stable
+    out = []
+    for p in range(n):
+        o = order[offs[p]:offs[p] + lens[p]]
+        if lens[p] > cap:  # the best fact of every (relation, direction) kind first
+            kind = graph.rel[facts[o]].astype(np.int64) * 2 + dirs[o]
             _, first = np.unique(kind, return_index=True)
-            firsts = order[np.sort(first)][:cap]
-            rest = np.setdiff1d(order, firsts, assume_unique=True)
+            firsts = o[np.sort(first)][:cap]
+            rest = np.setdiff1d(o, firsts, assume_unique=True)
             rest = rest[np.argsort(-sims[rest], kind="stable")]
-            order = np.concatenate([firsts, rest])[:cap]
-        facts, dirs = facts[order], dirs[order]
-    if cache is not None:
-        cache[e] = (facts, dirs)
-    return facts, dirs
+            o = np.concatenate([firsts, rest])[:cap]
+        out.append((facts[o], dirs[o]))
+    return out
+
+
+_ROW_CHUNK = 2048  # rows of [rows, D] blocks made at once
 
 
 def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -450,9 +464,21 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
                 found[i] = r
                 if caches[i] is not None:
                     caches[i][("dense", walkers[i].fetched)] = r
+    pre: dict = {}  # the neighbour lists not cached yet, pre-ranked for all walkers at once
     for i, w in enumerate(walkers):
-        qvec = qvecs[i]
-        facts, dirs = _preranked(graph, w.entity, qvec, caches[i], cap)
+        if caches[i] is None or w.entity not in caches[i]:
+            pre.setdefault((id(caches[i]) if caches[i] is not None else -1 - i, w.entity), i)
+    if pre:
+        reps = list(pre.values())
+        for i, got in zip(reps, _preranked_many(graph, [walkers[i].entity for i in reps],
+                                                qvecs[reps], cap)):
+            if caches[i] is not None:
+                caches[i][walkers[i].entity] = got
+            else:
+                pre[(-1 - i, walkers[i].entity)] = got
+    for i, w in enumerate(walkers):
+        c = caches[i]
+        facts, dirs = c[w.entity] if c is not None else pre[(-1 - i, w.entity)]
         hid = hidden[i]
         if hid or (dense_now and w.fetched):
             keep = ~np.isin(facts, np.fromiter(set(w.fetched) | set(hid), np.int64))
