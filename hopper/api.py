@@ -192,13 +192,17 @@ class Hopper:
         return out
 
     def _encode(self, texts):
-        return self._encoder_now().encode(list(texts))
+        from .embed import FEW_TEXTS
 
-    def _encoder_now(self):
+        texts = list(texts)
+        return self._encoder_now(few=len(texts) <= FEW_TEXTS).encode(texts)
+
+    def _encoder_now(self, few: bool = False):
+        """The encoder, made at first use; ``few``: that first use encodes a few texts."""
         from . import embed
 
         if self._encoder is None:
-            self._encoder = embed.Encoder("auto")
+            self._encoder = embed.Encoder("auto", few=few)
         return self._encoder
 
     # -- training --------------------------------------------------------------------------------

@@ -9,11 +9,15 @@ same load on a shared machine; the table gives medians, all runs, and the ratio.
 Usage: .venv/bin/python scripts/bench_ab.py [--base main] [--runs 7] [--per N] -- ask ... --store S
 
 ``--per N`` divides each time by N (ms per question for a batch of N questions).
+``--bytecode`` compiles both sides' modules first (``compileall``, as ``scripts/install``
+does); without it, each side runs as found (with PYTHONDONTWRITEBYTECODE=1 set, a tree
+without ``__pycache__`` compiles hopper's sources in every process).
 Commands that write (``ask`` records runs) write to the store named, under both versions.
 """
 from __future__ import annotations
 
 import argparse
+import shlex
 import os
 import statistics
 import subprocess
@@ -42,6 +46,7 @@ def main() -> int:
     ap.add_argument("--base", default="main")
     ap.add_argument("--runs", type=int, default=7)
     ap.add_argument("--per", type=int, default=0)
+    ap.add_argument("--bytecode", action="store_true")
     ap.add_argument("command", nargs=argparse.REMAINDER)
     a = ap.parse_args()
     cmd = a.command[1:] if a.command[:1] == ["--"] else a.command
@@ -52,6 +57,9 @@ def main() -> int:
                                  capture_output=True).stdout
         subprocess.run(["tar", "-x", "-C", tmp], input=archive, check=True)
         sides = {f"base ({a.base} {rev})": tmp, "this tree": str(ROOT)}
+        for src in sides.values():
+            if a.bytecode:
+                subprocess.run([sys.executable, "-m", "compileall", "-q", f"{src}/hopper"], check=True)
         times: dict = {k: [] for k in sides}
         for name, src in sides.items():
             timed(src, cmd)  # warm-up: page cache, compiled bytecode
@@ -66,11 +74,14 @@ def main() -> int:
         med[name] = statistics.median(ts) * scale
         print(f"| {name} | {med[name]:.3f} | {', '.join(f'{t * scale:.3f}' for t in ts)} |")
     base, new = med.values()
-    print(f"\nratio base/this tree: {base / new:.2f}x; command: hopper {' '.join(cmd)}")
+    print(f"\nratio base/this tree: {base / new:.2f}x; command: hopper {shlex.join(cmd)}")
     print(f"machine: {cores()} cores, {cpu_model()}; load average at the end {load[0]:.1f} "
           f"(1 min), {load[1]:.1f} (5 min)")
+    pyc = "compiled first (--bytecode)" if a.bytecode else "as found"
+    print(f"bytecode: {pyc}; PYTHONDONTWRITEBYTECODE={os.environ.get('PYTHONDONTWRITEBYTECODE', '')}")
     print(f"reproduce: .venv/bin/python scripts/bench_ab.py --base {a.base} --runs {a.runs}"
-          + (f" --per {a.per}" if a.per else "") + " -- " + " ".join(cmd))
+          + (f" --per {a.per}" if a.per else "") + (" --bytecode" if a.bytecode else "")
+          + " -- " + shlex.join(cmd))
     return 0
 
 

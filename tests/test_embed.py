@@ -228,3 +228,17 @@ def test_missing_model_package_is_a_clear_error(monkeypatch):
         embed.model_dir()
     with pytest.raises(embed.EmbedError):
         embed.Encoder("auto")
+
+
+def test_an_encoder_for_a_few_texts_gives_the_same_vectors(fast):
+    """A cold ask's encoder skips onnxruntime's weight pre-packing (a quicker session); its
+    vectors are those of the pre-packed one, and a large job switches it to pre-packing."""
+    texts = ["Who makes part KX-2041?", "in", "which", "city", "Lévi-Strauss était un anthropologue.",
+             "?", " ".join(["a long text"] * 50)]
+    few = embed.Encoder("fast", few=True)
+    assert few._fast.prepacked is False
+    a, b = few.encode(texts), fast.encode(texts)
+    assert np.min(np.sum(a * b, axis=1)) > 0.99999 and np.abs(a - b).max() < 1e-5
+    few.encode(["text %d" % i for i in range(embed.FEW_TEXTS + 1)])
+    assert few._fast.prepacked is True
+    assert np.abs(few.encode(texts) - b).max() < 1e-5
