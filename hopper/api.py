@@ -87,6 +87,7 @@ class Hopper:
         self.store = Store(path)
         self._graph = None
         self._encoder = None
+        self._policies: dict = {}  # policies read, by version and settings (see Policy.read)
 
     @property
     def path(self) -> Path:
@@ -145,9 +146,9 @@ class Hopper:
 
         if con is None:
             with self.store.connect() as c:
-                policy = Policy.read(c, version)
+                policy = Policy.read(c, version, known=self._policies)
         else:
-            policy = Policy.read(con, version)
+            policy = Policy.read(con, version, known=self._policies)
         if policy is None and required:
             raise InputError("the store has no trained policy", file=str(self.path),
                              hint="run 'hopper train --questions FILE', or use --strategy greedy or walk")

@@ -150,3 +150,32 @@ def test_candidates_of_a_batch_are_each_walkers_own(tiny_graph):
             assert np.allclose(batch["stop_feats"][i], c.stop_feats, atol=1e-6)
             if i > 0:  # fetched (walker 1) or hidden (walker 2): never offered again
                 assert f_ab not in set(c.facts.tolist())
+
+
+def test_a_policy_read_before_is_not_read_again():
+    """Warm asks in one process keep the policy they read; a new version or another store's
+    policy of the same number is read afresh."""
+    import datetime
+
+    import duckdb
+
+    from hopper.store import SCHEMA
+
+    def store():
+        con = duckdb.connect(":memory:")
+        con.execute(SCHEMA)
+        return con
+
+    now = datetime.datetime(2026, 1, 1)
+    params = pol.init_params(16, 8, 2, 3, seed=0)
+    con, known = store(), {}
+    pol.Policy(params, {"train_run": "a"}).save(con, 1, now)
+    first = pol.Policy.read(con, known=known)
+    assert pol.Policy.read(con, known=known) is first
+    pol.Policy(params, {"train_run": "b"}).save(con, 2, now)
+    second = pol.Policy.read(con, known=known)
+    assert second.version == 2 and second is not first
+    assert pol.Policy.read(con, 1, known=known) is first
+    other = store()
+    pol.Policy(params, {"train_run": "c"}).save(other, 1, now)
+    assert pol.Policy.read(other, known=known).settings["train_run"] == "c"
