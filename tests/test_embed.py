@@ -242,3 +242,12 @@ def test_an_encoder_for_a_few_texts_gives_the_same_vectors(fast):
     few.encode(["text %d" % i for i in range(embed.FEW_TEXTS + 1)])
     assert few._fast.prepacked is True
     assert np.abs(few.encode(texts) - b).max() < 1e-5
+
+
+def test_batches_do_not_pad_short_texts_to_long_ones():
+    lengths = np.array([16, 15, 3, 3, 4, 9, 8, 2, 16, 30])
+    order = np.argsort(-lengths, kind="stable")
+    got = [lengths[b].tolist() for b in embed._batches(order, lengths, 64)]
+    assert got == [[30, 16, 16, 15], [9, 8], [4, 3, 3, 2]]
+    assert [len(b) for b in embed._batches(order, lengths, 3)] == [3, 3, 3, 1]
+    assert sorted(np.concatenate(embed._batches(order, lengths, 2)).tolist()) == list(range(10))
