@@ -263,11 +263,15 @@ class Store:
 
     @staticmethod
     def _has_schema(con) -> bool:
-        row = first(con.execute("SELECT count(*) FROM information_schema.tables "
-                          "WHERE table_name = 'meta' AND table_schema = 'main'"))
-        if not row[0]:
-            return False
-        return first(con.execute("SELECT count(*) FROM meta WHERE key = 'schema_version'"))[0] > 0
+        # One query on the table itself (information_schema views cost ~10-20 ms each on a
+        # busy machine, on every connection of every command).
+        try:
+            return first(con.execute("SELECT count(*) FROM main.meta "
+                                     "WHERE key = 'schema_version'"))[0] > 0
+        except duckdb.CatalogException:
+            return False  # no table main.meta
+        except duckdb.BinderException:
+            return False  # a table named meta of another shape
 
     def _ensure_schema(self, con) -> None:
         if self._has_schema(con):
@@ -288,11 +292,12 @@ class Store:
     @staticmethod
     def _add_columns(con) -> None:
         """Bring a store made before a column was added up to date (write connections only)."""
-        have = {(t, c) for t, c in con.execute(
-            "SELECT table_name, column_name FROM information_schema.columns "
-            "WHERE table_schema = 'main'").fetchall()}
         for table, column, kind in _ADDED_COLUMNS:
-            if (table, column) not in have and any(t == table for t, _ in have):
+            try:
+                first(con.execute(f"SELECT {column} FROM main.{table} LIMIT 0"))
+            except duckdb.CatalogException:
+                continue  # no such table (yet): nothing to bring up to date
+            except duckdb.BinderException:  # the table lacks the column
                 con.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
 
     # -- small helpers -------------------------------------------------------------------
