@@ -17,6 +17,7 @@ Commands that write (``ask`` records runs) write to the store named, under both 
 from __future__ import annotations
 
 import argparse
+import resource
 import shlex
 import os
 import statistics
@@ -33,12 +34,19 @@ from bench_completion import cores, cpu_model  # noqa: E402
 RUN = "import sys; sys.path.insert(0, sys.argv.pop(1)); from hopper.cli import main; sys.exit(main())"
 
 
+CPU: dict = {}  # side -> CPU seconds (user + system) of each timed process
+
+
 def timed(src: str, args: list) -> float:
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1", HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1")
+    r0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
     subprocess.run([sys.executable, "-c", RUN, src, *args], cwd=ROOT, env=env, check=True,
                    stdout=subprocess.DEVNULL)
-    return time.perf_counter() - t
+    wall = time.perf_counter() - t
+    r1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+    CPU.setdefault(src, []).append(r1.ru_utime - r0.ru_utime + r1.ru_stime - r0.ru_stime)
+    return wall
 
 
 def main() -> int:
@@ -63,18 +71,21 @@ def main() -> int:
         times: dict = {k: [] for k in sides}
         for name, src in sides.items():
             timed(src, cmd)  # warm-up: page cache, compiled bytecode
+            CPU[src].clear()
         for _ in range(a.runs):
             for name, src in sides.items():
                 times[name].append(timed(src, cmd))
     scale, unit = (1000 / a.per, "ms/question") if a.per else (1.0, "s")
     load = os.getloadavg()
-    print(f"| code | median, {unit} | runs, {unit} |\n|---|---|---|")
+    print(f"| code | median wall, {unit} | median CPU (user+sys), {unit} | wall of each run, {unit} |"
+          "\n|---|---|---|---|")
     med = {}
-    for name, ts in times.items():
+    for (name, ts), src in zip(times.items(), sides.values()):
         med[name] = statistics.median(ts) * scale
-        print(f"| {name} | {med[name]:.3f} | {', '.join(f'{t * scale:.3f}' for t in ts)} |")
+        cpu = statistics.median(CPU[src]) * scale
+        print(f"| {name} | {med[name]:.3f} | {cpu:.3f} | {', '.join(f'{t * scale:.3f}' for t in ts)} |")
     base, new = med.values()
-    print(f"\nratio base/this tree: {base / new:.2f}x; command: hopper {shlex.join(cmd)}")
+    print(f"\nratio base/this tree (wall): {base / new:.2f}x; command: hopper {shlex.join(cmd)}")
     print(f"machine: {cores()} cores, {cpu_model()}; load average at the end {load[0]:.1f} "
           f"(1 min), {load[1]:.1f} (5 min)")
     pyc = "compiled first (--bytecode)" if a.bytecode else "as found"
