@@ -320,7 +320,8 @@ def _cpu_count() -> int:
 
 # A session made for a few texts skips onnxruntime's pre-packing of the weights: it is made in
 # about 20 ms instead of about 100, and each run is about 1.5x slower (vectors within 2e-7).
-# A later job of more texts than this makes the pre-packed session (once) and keeps it.
+# Once more texts than this have been encoded (one large job or many small ones: warm asks in
+# one process), the pre-packed session is made (once) and kept.
 FEW_TEXTS = 64
 
 
@@ -383,6 +384,7 @@ class _OnnxEncoder:
         self.tokenizer = tok
         self.session = None
         self.prepacked = prepack
+        self.encoded = 0  # texts encoded so far (a few-texts session pre-packs past FEW_TEXTS)
         if optimized is None:
             opt_dir = _optimized_dir(onnx_path)
             if opt_dir is not None and (opt_dir / "model.onnx").is_file():
@@ -436,7 +438,8 @@ class _OnnxEncoder:
         out = np.zeros((n, DIM), dtype=np.float32)
         if n == 0:
             return out
-        if not self.prepacked and n > FEW_TEXTS:
+        self.encoded += n
+        if not self.prepacked and self.encoded > FEW_TEXTS:  # a big job, or many small ones
             self._prepack()
         bar = None
         if _show_progress(progress):
