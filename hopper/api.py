@@ -192,11 +192,18 @@ class Hopper:
             raise InputError("no questions given", field="questions")
         return out
 
-    def _encode(self, texts):
+    def _encode(self, texts, few: bool = False):
+        """Unit vectors of ``texts``; ``few``: an answer's texts (``ask``), which may run on an
+        encoder made quickly for a few texts (see ``embed.FEW_TEXTS``).  Everything else
+        (load, train, eval) runs on the pre-packed session, in every process alike."""
         from .embed import FEW_TEXTS
 
         texts = list(texts)
-        return self._encoder_now(few=len(texts) <= FEW_TEXTS).encode(texts)
+        few = few and len(texts) <= FEW_TEXTS
+        return self._encoder_now(few=few).encode(texts, few=few)
+
+    def _encode_few(self, texts):
+        return self._encode(texts, few=True)
 
     def _encoder_now(self, few: bool = False):
         """The encoder, made at first use; ``few``: that first use encodes a few texts."""
@@ -393,7 +400,7 @@ class Hopper:
         graph, policy = self._graph_and_policy(strategy)
         from .env import episodes
 
-        eps = episodes(graph, qs, self._encode)
+        eps = episodes(graph, qs, self._encode_few)
         return self._report(graph, policy, strategy, self._solve_many(graph, policy, strategy, qs, eps),
                             top, record)
 
@@ -415,7 +422,7 @@ class Hopper:
             self._baseline_settings()
         from .env import episodes
 
-        ep = episodes(graph, [q], self._encode)[0]
+        ep = episodes(graph, [q], self._encode_few)[0]
         ep.hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
         t0 = time.perf_counter()
         out = self._solve(graph, policy, strategy, q, ep)

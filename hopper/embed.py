@@ -321,7 +321,8 @@ def _cpu_count() -> int:
 # A session made for a few texts skips onnxruntime's pre-packing of the weights: it is made in
 # about 20 ms instead of about 100, and each run is about 1.5x slower (vectors within 2e-7).
 # Once more texts than this have been encoded (one large job or many small ones: warm asks in
-# one process), the pre-packed session is made (once) and kept.
+# one process), or any job not marked few comes (load, train, eval), the pre-packed session
+# is made (once) and kept.
 FEW_TEXTS = 64
 
 
@@ -433,14 +434,18 @@ class _OnnxEncoder:
     # Texts tokenised (and length-sorted) at a time: bounds the memory of tokenizer output.
     _CHUNK = 16384
 
-    def encode(self, texts: list[str], batch_size: int, progress: bool) -> np.ndarray:
+    def encode(self, texts: list[str], batch_size: int, progress: bool,
+               few: bool = False) -> np.ndarray:
+        """Unit vectors of ``texts``.  Only a job marked ``few`` runs on a session made for a
+        few texts; any other job pre-packs it first, so loads, training and evaluation always
+        see the pre-packed session's numbers."""
         n = len(texts)
         out = np.zeros((n, DIM), dtype=np.float32)
         if n == 0:
             return out
         self.encoded += n
-        if not self.prepacked and self.encoded > FEW_TEXTS:  # a big job, or many small ones
-            self._prepack()
+        if not self.prepacked and (not few or self.encoded > FEW_TEXTS):
+            self._prepack()  # any job not marked few, a big one, or many small ones
         bar = None
         if _show_progress(progress):
             from tqdm import tqdm
@@ -514,8 +519,11 @@ class Encoder:
         self._reference = _load_reference()
         self.backend = "reference"
 
-    def encode(self, texts: Sequence[str], batch_size: int = 64, progress: bool = False) -> np.ndarray:
-        """(len(texts), 384) float32, rows of unit length, in the order of `texts`."""
+    def encode(self, texts: Sequence[str], batch_size: int = 64, progress: bool = False,
+               few: bool = False) -> np.ndarray:
+        """(len(texts), 384) float32, rows of unit length, in the order of `texts`.
+
+        ``few``: a cold ``ask``'s job, which may run on a session made for a few texts."""
         if isinstance(texts, str):
             raise TypeError("encode() takes a list of strings, not one string")
         texts = list(texts)
@@ -527,5 +535,5 @@ class Encoder:
         if not texts:
             return np.zeros((0, DIM), dtype=np.float32)
         if self._fast is not None:
-            return self._fast.encode(texts, batch_size, progress)
+            return self._fast.encode(texts, batch_size, progress, few=few)
         return _reference_encode(self._reference, texts, batch_size, progress)

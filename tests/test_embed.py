@@ -237,16 +237,20 @@ def test_an_encoder_for_a_few_texts_gives_the_same_vectors(fast):
              "?", " ".join(["a long text"] * 50)]
     few = embed.Encoder("fast", few=True)
     assert few._fast.prepacked is False
-    a, b = few.encode(texts), fast.encode(texts)
+    a, b = few.encode(texts, few=True), fast.encode(texts)
+    assert few._fast.prepacked is False
     assert np.min(np.sum(a * b, axis=1)) > 0.99999 and np.abs(a - b).max() < 1e-5
-    few.encode(["text %d" % i for i in range(embed.FEW_TEXTS + 1)])
+    few.encode(["text %d" % i for i in range(embed.FEW_TEXTS + 1)], few=True)
     assert few._fast.prepacked is True
     many_small, eight = embed.Encoder("fast", few=True), texts + ["one more"]
     for i in range(embed.FEW_TEXTS // 8):  # warm asks in one process: 64 texts so far
-        many_small.encode(eight)
+        many_small.encode(eight, few=True)
     assert many_small._fast.prepacked is False
-    many_small.encode(eight)
+    many_small.encode(eight, few=True)
     assert many_small._fast.prepacked is True
+    other = embed.Encoder("fast", few=True)  # a job not marked few (load, train): pre-packed
+    other.encode(eight)
+    assert other._fast.prepacked is True
     assert np.abs(few.encode(texts) - b).max() < 1e-5
 
 
