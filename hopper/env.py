@@ -161,6 +161,8 @@ class Graph:
 
     @classmethod
     def _read_store(cls, con, version: int) -> "Graph":
+        import duckdb  # noqa: F401 - the relation API (con.sql), which store.py does not load
+
         def vectors(sql):
             tab = con.sql(sql).to_arrow_table()
             if tab.num_rows == 0:

@@ -9,7 +9,18 @@ import random
 import time
 from pathlib import Path
 
-import duckdb
+try:
+    # The engine alone (~20 ms to import), not the duckdb package's Python layer over it
+    # (~100 ms more: its relation API, and its version read through importlib.metadata).
+    # Everything here is plain connect/execute/fetch, which the engine module provides (the
+    # package re-exports these very objects).  Code that builds relations (``con.sql``,
+    # ``register``: load, reading a store into a graph) imports ``duckdb`` itself, which
+    # extends connections made before it too.
+    import _duckdb as duckdb
+
+    duckdb.connect, duckdb.Error, duckdb.CatalogException, duckdb.BinderException  # noqa: B018
+except (ImportError, AttributeError):  # another build of duckdb: the package, as usual
+    import duckdb
 
 from .errors import InputError, StoreBusyError
 
