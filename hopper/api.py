@@ -87,6 +87,7 @@ class Hopper:
         self.store = Store(path)
         self._graph = None
         self._encoder = None
+        self._policies: dict = {}  # policies read, by version and settings (see Policy.read)
 
     @property
     def path(self) -> Path:
@@ -145,9 +146,9 @@ class Hopper:
 
         if con is None:
             with self.store.connect() as c:
-                policy = Policy.read(c, version)
+                policy = Policy.read(c, version, known=self._policies)
         else:
-            policy = Policy.read(con, version)
+            policy = Policy.read(con, version, known=self._policies)
         if policy is None and required:
             raise InputError("the store has no trained policy", file=str(self.path),
                              hint="run 'hopper train --questions FILE', or use --strategy greedy or walk")
@@ -191,14 +192,25 @@ class Hopper:
             raise InputError("no questions given", field="questions")
         return out
 
-    def _encode(self, texts):
-        return self._encoder_now().encode(list(texts))
+    def _encode(self, texts, few: bool = False):
+        """Unit vectors of ``texts``; ``few``: an answer's texts (``ask``), which may run on an
+        encoder made quickly for a few texts (see ``embed.FEW_TEXTS``).  Everything else
+        (load, train, eval) runs on the pre-packed session, in every process alike."""
+        from .embed import FEW_TEXTS
 
-    def _encoder_now(self):
+        texts = list(texts)
+        few = few and len(texts) <= FEW_TEXTS
+        return self._encoder_now(few=few).encode(texts, few=few)
+
+    def _encode_few(self, texts):
+        return self._encode(texts, few=True)
+
+    def _encoder_now(self, few: bool = False):
+        """The encoder, made at first use; ``few``: that first use encodes a few texts."""
         from . import embed
 
         if self._encoder is None:
-            self._encoder = embed.Encoder("auto")
+            self._encoder = embed.Encoder("auto", few=few)
         return self._encoder
 
     # -- training --------------------------------------------------------------------------------
@@ -388,13 +400,9 @@ class Hopper:
         graph, policy = self._graph_and_policy(strategy)
         from .env import episodes
 
-        eps = episodes(graph, qs, self._encode)
-        results = []
-        for q, ep in zip(qs, eps):
-            t0 = time.perf_counter()
-            out = self._solve(graph, policy, strategy, q, ep)
-            results.append((q, out, (time.perf_counter() - t0) * 1000))
-        return self._report(graph, policy, strategy, results, top, record)
+        eps = episodes(graph, qs, self._encode_few)
+        return self._report(graph, policy, strategy, self._solve_many(graph, policy, strategy, qs, eps),
+                            top, record)
 
     def rerun(self, question: str, *, subject: str | None = None, relation: str | None = None,
               strategy: str = "policy", policy_version: int | None = None,
@@ -414,12 +422,42 @@ class Hopper:
             self._baseline_settings()
         from .env import episodes
 
-        ep = episodes(graph, [q], self._encode)[0]
+        ep = episodes(graph, [q], self._encode_few)[0]
         ep.hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
         t0 = time.perf_counter()
         out = self._solve(graph, policy, strategy, q, ep)
         return self._report(graph, policy, strategy, [(q, out, (time.perf_counter() - t0) * 1000)],
                             top, record=False)[0]
+
+    def _solve_many(self, graph, policy, strategy, qs, eps) -> list:
+        """[(question, outcome, ms)] for many questions.  The policy searches them together
+        (``search.beam_search_many``: one batch per hop for all questions; each question's
+        ms is then its share of the whole); the baselines one by one."""
+        if strategy != "policy":
+            results = []
+            for q, ep in zip(qs, eps):
+                t0 = time.perf_counter()
+                out = self._solve(graph, policy, strategy, q, ep)
+                results.append((q, out, (time.perf_counter() - t0) * 1000))
+            return results
+        from .search import beam_search_many
+
+        t0 = time.perf_counter()
+        outs = beam_search_many(graph, policy, eps, beam=int(policy.settings.get("beam", 16)))
+        ms = (time.perf_counter() - t0) * 1000 / max(len(qs), 1)
+        for q, ep, out in zip(qs, eps, outs):
+            self._settle(policy, q, ep, out)
+        return [(q, out, ms) for q, out in zip(qs, outs)]
+
+    @staticmethod
+    def _settle(policy, q: Question, ep, out) -> None:
+        """Abstain below the policy's threshold; say why a completion subject is unknown."""
+        if not out.abstained and out.confidence < policy.threshold:
+            out.abstained = True
+            out.reason = (f"confidence {out.confidence:.2f} is below the threshold "
+                          f"{policy.threshold:.2f} set on the validation questions")
+        if q.is_completion and not ep.starts:
+            out.reason = f"the subject '{q.subject}' is not an entity of the store"
 
     def _solve(self, graph, policy, strategy, q: Question, ep):
         from .search import beam_search, greedy, walk
@@ -427,11 +465,9 @@ class Hopper:
         starts = ep.starts
         if strategy == "policy":
             out = beam_search(graph, policy, ep, beam=int(policy.settings.get("beam", 16)))
-            if not out.abstained and out.confidence < policy.threshold:
-                out.abstained = True
-                out.reason = (f"confidence {out.confidence:.2f} is below the threshold "
-                              f"{policy.threshold:.2f} set on the validation questions")
-        elif strategy == "greedy":
+            self._settle(policy, q, ep, out)
+            return out
+        if strategy == "greedy":
             hops = int(policy.settings.get("greedy_hops", 2)) if policy else 2
             out = greedy(graph, ep, hops=hops)
         else:
@@ -496,19 +532,7 @@ class Hopper:
         else:
             with self.store.transaction() as con:
                 fill(con)
-                for doc, out, ms in runs:
-                    con.execute("INSERT INTO runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", [
-                        doc["run_id"], created, doc["question"], doc.get("subject"), doc.get("relation"),
-                        doc["strategy"], doc["policy_version"], doc["answer"], doc["confidence"],
-                        doc["abstained"], doc.get("reason"), json.dumps(doc["ranked"]),
-                        json.dumps(doc["start_entities"]), graph.facts_version, round(ms, 3)])
-                    for f in doc["fetches"]:
-                        con.execute("INSERT INTO run_fetches (run_id, hop, fact_id, probability, "
-                                    "from_entity, to_entity, alternatives, direction) "
-                                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?)", [
-                                        doc["run_id"], f["hop"], f["fact_id"], f["probability"],
-                                        f["from"], f["to"], json.dumps(f["alternatives"]),
-                                        f["direction"]])
+                _insert_runs(con, runs, created, graph.facts_version)
         for doc, _, ms in runs:
             doc["elapsed_ms"] = round(ms, 3)
         return docs
@@ -534,10 +558,7 @@ class Hopper:
         table = {}
         for s in strategies:
             rows = []
-            for q, e in zip(qs, eps):
-                t0 = time.perf_counter()
-                out = self._solve(graph, policy, s, q, e)
-                ms = (time.perf_counter() - t0) * 1000
+            for (q, out, ms), e in zip(self._solve_many(graph, policy, s, qs, eps), eps):
                 h1, rr = hits_and_rank(out, e.gold)
                 rows.append((q.hops, h1, rr, out.n_fetches, ms, out.abstained))
             table[s] = _summarise(rows)
@@ -556,6 +577,35 @@ class Hopper:
         from .audit import list_runs
 
         return list_runs(self.store, limit=limit, **filters)
+
+
+def _insert_runs(con, runs, created, facts_version) -> None:
+    """Record answered questions: one INSERT for the runs and one for their fetches, each
+    column passed as a list (a batch of answers is two statements, not one per row)."""
+    cols = list(zip(*[(doc["run_id"], doc["question"], doc.get("subject"), doc.get("relation"),
+                       doc["strategy"], doc["policy_version"], doc["answer"], doc["confidence"],
+                       doc["abstained"], doc.get("reason"), json.dumps(doc["ranked"]),
+                       json.dumps(doc["start_entities"]), round(ms, 3)) for doc, _, ms in runs]))
+    if not cols:
+        return
+    con.execute("INSERT INTO runs SELECT unnest($1::VARCHAR[]), $2::TIMESTAMP, "
+                "unnest($3::VARCHAR[]), unnest($4::VARCHAR[]), unnest($5::VARCHAR[]), "
+                "unnest($6::VARCHAR[]), unnest($7::INTEGER[]), unnest($8::VARCHAR[]), "
+                "unnest($9::DOUBLE[]), unnest($10::BOOLEAN[]), unnest($11::VARCHAR[]), "
+                "unnest($12::VARCHAR[])::JSON, unnest($13::VARCHAR[])::JSON, $14::INTEGER, "
+                "unnest($15::DOUBLE[])",
+                [list(cols[0]), created, *[list(c) for c in cols[1:12]], int(facts_version),
+                 list(cols[12])])
+    rows = [(doc["run_id"], f["hop"], f["fact_id"], f["probability"], f["from"], f["to"],
+             json.dumps(f["alternatives"]), f["direction"])
+            for doc, _, _ in runs for f in doc["fetches"]]
+    if rows:
+        f = [list(c) for c in zip(*rows)]
+        con.execute("INSERT INTO run_fetches (run_id, hop, fact_id, probability, from_entity, "
+                    "to_entity, alternatives, direction) SELECT unnest($1::VARCHAR[]), "
+                    "unnest($2::INTEGER[]), unnest($3::INTEGER[]), unnest($4::DOUBLE[]), "
+                    "unnest($5::VARCHAR[]), unnest($6::VARCHAR[]), unnest($7::VARCHAR[])::JSON, "
+                    "unnest($8::VARCHAR[])", f)
 
 
 def _alternative(graph, info, fact_row, p):

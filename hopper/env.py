@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .index import IVFIndex, exact_search, mapped, min_facts
+from .index import IVFIndex, exact_search_many, mapped, min_facts
 from .store import Store
 
 _CACHE_LAYOUT = "l2"  # bump when the cache's files change, so old snapshots are not read
@@ -161,6 +161,8 @@ class Graph:
 
     @classmethod
     def _read_store(cls, con, version: int) -> "Graph":
+        import duckdb  # noqa: F401 - the relation API (con.sql), which store.py does not load
+
         def vectors(sql):
             tab = con.sql(sql).to_arrow_table()
             if tab.num_rows == 0:
@@ -320,15 +322,22 @@ class Graph:
     def dense_search(self, query: np.ndarray, k: int, exclude=()) -> np.ndarray:
         """Facts most similar to ``query``, best first: probes the IVF index when there is
         one (large stores), else an exact scan over the fact vectors."""
+        return self.dense_search_many(np.asarray(query)[None, :], k, [exclude])[0]
+
+    def dense_search_many(self, queries: np.ndarray, k: int, excludes: list) -> list:
+        """``dense_search`` for many queries (one scan, or each probed list scored once)."""
         if self.n_facts == 0:
-            return np.zeros(0, np.int64)
-        k2 = min(self.n_facts, k + len(exclude))
+            return [np.zeros(0, np.int64) for _ in range(len(queries))]
+        ks = [min(self.n_facts, k + len(ex)) for ex in excludes]
         if self.ivf is not None:
-            top = self.ivf.search(query, k2)
+            tops = self.ivf.search_many(queries, ks)
         else:
-            top = exact_search(self.fact_vecs, query, k2)
-        ex = set(int(e) for e in exclude)
-        return np.array([t for t in top if int(t) not in ex][:k], np.int64)
+            tops = exact_search_many(self.fact_vecs, queries, ks)
+        out = []
+        for top, exclude in zip(tops, excludes):
+            ex = set(int(e) for e in exclude)
+            out.append(np.array([t for t in top if int(t) not in ex][:k], np.int64))
+        return out
 
 
 def _cos(a: np.ndarray, b: np.ndarray) -> float:
@@ -357,91 +366,262 @@ class Candidates:
     here: int = -1      # the entity the walker stands on
 
 
+def _preranked_many(graph: Graph, ents: list, qvecs: np.ndarray, cap: int) -> list:
+    """The facts touching each entity, best first for its question, capped: for many
+    (entity, question vector) pairs, their neighbour lists read as one flat array, scored and
+    sorted together.
+
+    Past ``cap`` (hubs, finished one by one) the best fact of every (relation, direction)
+    kind comes first, so the policy can always choose any relation, then the cap is filled
+    by similarity to the question.
+    """
+    ents = np.asarray(ents, np.int64)
+    n = len(ents)
+    lo = graph.adj_ptr[ents].astype(np.int64)
+    lens = (graph.adj_ptr[ents + 1] - graph.adj_ptr[ents]).astype(np.int64)
+    total = int(lens.sum())
+    seg = np.repeat(np.arange(n), lens)
+    offs = np.cumsum(lens) - lens
+    pos = np.arange(total) - offs[seg] + lo[seg]
+    facts = np.asarray(graph.adj_fact[pos], np.int64)
+    dirs = np.asarray(graph.adj_dir[pos], np.int8)
+    sims = np.zeros(total, np.float32)
+    for a in range(0, total, _ROW_CHUNK):
+        b = min(total, a + _ROW_CHUNK)
+        sims[a:b] = _rowdot(np.asarray(graph.fact_vecs[facts[a:b]]), qvecs[seg[a:b]])
+    order = np.lexsort((np.arange(total), -sims, seg))  # per pair, best first, stable
+    out = []
+    for p in range(n):
+        o = order[offs[p]:offs[p] + lens[p]]
+        if lens[p] > cap:  # the best fact of every (relation, direction) kind first
+            kind = graph.rel[facts[o]].astype(np.int64) * 2 + dirs[o]
+            _, first = np.unique(kind, return_index=True)
+            firsts = o[np.sort(first)][:cap]
+            rest = np.setdiff1d(o, firsts, assume_unique=True)
+            rest = rest[np.argsort(-sims[rest], kind="stable")]
+            o = np.concatenate([firsts, rest])[:cap]
+        out.append((facts[o], dirs[o]))
+    return out
+
+
+_ROW_CHUNK = 2048  # rows of [rows, D] blocks made at once
+
+
+def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise inner products; each row's sum is computed alone, so a walker's features do
+    not depend on which other walkers share its batch."""
+    return np.einsum("nd,nd->n", a, b)
+
+
+def _cos_rows(a: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """cos(a_i, q_i) for unit q_i; 0 where a_i is (nearly) zero."""
+    na = np.sqrt(_rowdot(a, a))
+    return np.where(na > 1e-9, _rowdot(a, q) / np.maximum(na, 1e-9), 0.0).astype(np.float32)
+
+
+_WALKER_CHUNK = 96  # walkers whose [candidates, D] blocks are made at once (see candidate_arrays)
+
+
+def _padded(rows: list, fill: int = -1) -> np.ndarray:
+    """Tuples of ints as one [len(rows), longest] int64 array, ``fill`` as padding."""
+    width = max([len(r) for r in rows] + [1])
+    out = np.full((len(rows), width), fill, np.int64)
+    for i, r in enumerate(rows):
+        if r:
+            out[i, :len(r)] = r
+    return out
+
+
+def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, max_hops: int,
+                     linked: list, hidden: list, caches: list, dense: bool = True,
+                     cap: int = ADJ_CAP) -> dict:
+    """What each of many walkers can fetch next, as flat arrays (STOP is implicit).
+
+    ``qvecs`` [B, D] is each walker's question vector, ``linked`` / ``hidden`` / ``caches``
+    each walker's question's linked entities, hidden facts and pre-ranking cache (walkers
+    of one question share them).  Returns ``seg`` [N] (the walker of each candidate, walkers
+    in order, each walker's candidates in its offer order), ``facts``, ``dirs``, ``nexts``,
+    ``feats`` [N, N_CHEAP], ``counts`` [B], ``stop_feats`` [B, N_STOP] and ``here`` [B].
+    One walker's numbers do not depend on the others in the batch.
+    """
+    B = len(walkers)
+    D = qvecs.shape[1] if qvecs.ndim == 2 else 0
+    parts_f, parts_d, parts_x = [], [], []
+    flat_filter = np.zeros(B, bool)  # walkers whose fetched facts are dropped below, in bulk
+    dense_now = dense and hop == 0 and graph.n_facts > 0
+    found: dict = {}  # walker -> its dense results, searched for all walkers at once
+    if dense_now:
+        need = [i for i, w in enumerate(walkers)
+                if caches[i] is None or ("dense", w.fetched) not in caches[i]]
+        if need:
+            qs = []
+            for i in need:
+                w = walkers[i]
+                query = qvecs[i] + (np.asarray(graph.fact_vecs[list(w.fetched)]).sum(0)
+                                    if w.fetched else 0.0)
+                qs.append(query / max(float(np.linalg.norm(query)), 1e-9))
+            res = graph.dense_search_many(np.stack(qs).astype(np.float32), DENSE_K + cap,
+                                          [set(walkers[i].fetched) | set(hidden[i]) for i in need])
+            for i, r in zip(need, res):
+                found[i] = r
+                if caches[i] is not None:
+                    caches[i][("dense", walkers[i].fetched)] = r
+    pre: dict = {}  # the neighbour lists not cached yet, pre-ranked for all walkers at once
+    for i, w in enumerate(walkers):
+        if caches[i] is None or w.entity not in caches[i]:
+            pre.setdefault((id(caches[i]) if caches[i] is not None else -1 - i, w.entity), i)
+    if pre:
+        reps = list(pre.values())
+        for i, got in zip(reps, _preranked_many(graph, [walkers[i].entity for i in reps],
+                                                qvecs[reps], cap)):
+            if caches[i] is not None:
+                caches[i][walkers[i].entity] = got
+            else:
+                pre[(-1 - i, walkers[i].entity)] = got
+    for i, w in enumerate(walkers):
+        c = caches[i]
+        facts, dirs = c[w.entity] if c is not None else pre[(-1 - i, w.entity)]
+        hid = hidden[i]
+        if hid or (dense_now and w.fetched):
+            keep = ~np.isin(facts, np.fromiter(set(w.fetched) | set(hid), np.int64))
+            facts, dirs = facts[keep], dirs[keep]
+        elif w.fetched:
+            flat_filter[i] = True
+        is_dense = None
+        if dense_now:  # at the start only: recovers a poor entity link
+            extra = found[i] if i in found else caches[i][("dense", w.fetched)]
+            offered = set(map(int, facts))
+            extra = np.array([f for f in extra if int(f) not in offered][:DENSE_K], np.int64)
+            if len(extra):
+                is_dense = np.concatenate([np.zeros(len(facts), np.float32),
+                                           np.ones(2 * len(extra), np.float32)])
+                facts = np.concatenate([facts, extra, extra])
+                dirs = np.concatenate([dirs, np.zeros(len(extra), np.int8),
+                                       np.ones(len(extra), np.int8)])
+        parts_f.append(facts)
+        parts_d.append(dirs)
+        parts_x.append(is_dense if is_dense is not None else np.zeros(len(facts), np.float32))
+    counts = np.array([len(f) for f in parts_f], np.int64)
+    seg = np.repeat(np.arange(B), counts)
+    facts = np.concatenate(parts_f) if B else np.zeros(0, np.int64)
+    dirs = np.concatenate(parts_d).astype(np.int8) if B else np.zeros(0, np.int8)
+    is_dense = np.concatenate(parts_x) if B else np.zeros(0, np.float32)
+    fetched = _padded([w.fetched for w in walkers])         # [B, F], -1 padding
+    if flat_filter.any():
+        drop = flat_filter[seg] & (facts[:, None] == fetched[seg]).any(1)
+        if drop.any():
+            keep = ~drop
+            facts, dirs, is_dense, seg = facts[keep], dirs[keep], is_dense[keep], seg[keep]
+            counts = np.bincount(seg, minlength=B).astype(np.int64)
+    here = np.array([w.entity for w in walkers], np.int64)
+    nexts = np.where(dirs == 0, graph.obj[facts], graph.subj[facts]).astype(np.int64)
+    # The text features read [candidates, D] blocks; they are made a few hundred walkers at
+    # a time, so the blocks stay small and reused instead of fresh 50 MB arrays per hop.
+    N = len(facts)
+    sim_text = np.zeros(N, np.float32)
+    sim_rel = np.zeros(N, np.float32)
+    gain = np.zeros(N, np.float32)
+    cover = np.zeros(B, np.float32)
+    before = np.zeros(B, np.float32)
+    ends = np.cumsum(counts)
+    firsts = ends - counts
+    for w0 in range(0, B, _WALKER_CHUNK):
+        w1 = min(B, w0 + _WALKER_CHUNK)
+        f_c = fetched[w0:w1]
+        q_c = qvecs[w0:w1]
+        # The path fetched so far (its vectors summed in order; padding adds exact zeros),
+        # how well it covers the question, and how much each candidate would add: a path
+        # that already says what the question asks is a reason to stop.
+        has = f_c >= 0
+        path = np.zeros((w1 - w0, D), np.float32)
+        last = np.zeros((w1 - w0, D), np.float32)
+        for j in range(f_c.shape[1]):
+            if has[:, j].any():
+                v = np.asarray(graph.fact_vecs[np.maximum(f_c[:, j], 0)]) * has[:, j, None]
+                path += v
+                last = np.where(has[:, j, None], v, last)
+        n_fetched = has.sum(1)
+        cover[w0:w1] = _cos_rows(path, q_c)
+        before[w0:w1] = np.where(n_fetched > 0, _cos_rows(path - last, q_c), 0.0)
+        a, b = int(firsts[w0]), int(ends[w1 - 1])
+        if a == b:
+            continue
+        s = seg[a:b] - w0
+        fv = np.asarray(graph.fact_vecs[facts[a:b]])
+        qv = q_c[s]
+        sim_text[a:b] = _rowdot(fv, qv)
+        sim_rel[a:b] = _rowdot(np.asarray(graph.relation_vecs[graph.rel[facts[a:b]]]), qv)
+        gain[a:b] = _cos_rows(path[s] + fv, qv) - cover[w0:w1][s]
+    if N:
+        visited = _padded([tuple(w.visited) + (w.entity,) for w in walkers])
+        linked_p = _padded([tuple(s) for s in linked])
+        deg = (graph.adj_ptr[nexts + 1] - graph.adj_ptr[nexts]).astype(np.float32)
+        kind = graph.rel[facts].astype(np.int64) * 2 + dirs
+        _, kinv, kcnt = np.unique(seg * (int(kind.max()) + 1) + kind, return_inverse=True,
+                                  return_counts=True)
+        kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)
+        feats = np.stack([
+            sim_text,                                            # text similar to the question
+            sim_rel,                                             # relation similar to the question
+            dirs.astype(np.float32),                             # inverse direction
+            is_dense,                                            # offered by dense search
+            (nexts[:, None] == visited[seg]).any(1).astype(np.float32),   # goes back somewhere visited
+            (nexts[:, None] == linked_p[seg]).any(1).astype(np.float32),  # goes to an entity the question names
+            np.log1p(deg) / 5.0,                                 # how connected the next entity is
+            np.full(N, (hop + 1) / max_hops, np.float32),        # how far into the walk
+            -np.log(kind_count),                                 # share of its (relation, direction) kind
+            gain,                                                # what it adds to the path's cover
+        ], axis=1).astype(np.float32)
+    else:
+        feats = np.zeros((0, N_CHEAP), np.float32)
+    deg_here = (graph.adj_ptr[here + 1] - graph.adj_ptr[here]).astype(np.float32)
+    stop_feats = np.stack([
+        np.full(B, hop == 0, np.float32),
+        np.array([w.entity in s for w, s in zip(walkers, linked)], np.float32),
+        np.full(B, hop / max_hops, np.float32),
+        np.log1p(deg_here) / 5.0,
+        cover, cover - before], axis=1).astype(np.float32) if B else np.zeros((0, N_STOP), np.float32)
+    return {"seg": seg, "facts": facts, "dirs": dirs, "nexts": nexts, "feats": feats,
+            "counts": counts, "stop_feats": stop_feats, "here": here}
+
+
+def candidates_batch(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, max_hops: int,
+                     linked: list, hidden: list, caches: list, dense: bool = True,
+                     cap: int = ADJ_CAP) -> dict:
+    """``candidate_arrays`` laid out as ``pad_candidates`` lays out a list of ``Candidates``
+    (plus ``nexts`` [B, C] and ``counts`` [B])."""
+    a = candidate_arrays(graph, walkers, qvecs, hop, max_hops, linked, hidden, caches,
+                         dense=dense, cap=cap)
+    B = len(walkers)
+    counts = a["counts"]
+    C = int(max(counts.max() if B else 0, 1))
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]]) if B else np.zeros(0, np.int64)
+    seg = a["seg"]
+    pos = np.arange(len(seg)) - starts[seg]
+    facts = np.full((B, C), -1, np.int64)
+    dirs = np.zeros((B, C), np.int8)
+    nexts = np.full((B, C), -1, np.int64)
+    feats = np.zeros((B, C, N_CHEAP), np.float32)
+    mask = np.zeros((B, C), bool)
+    facts[seg, pos], dirs[seg, pos], nexts[seg, pos] = a["facts"], a["dirs"], a["nexts"]
+    feats[seg, pos], mask[seg, pos] = a["feats"], True
+    return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask,
+            "stop_feats": a["stop_feats"], "here": a["here"], "nexts": nexts, "counts": counts}
+
+
 def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hops: int,
                linked: frozenset, hidden: frozenset = frozenset(), dense: bool = True,
                prerank_cache: dict | None = None, cap: int = ADJ_CAP) -> Candidates:
     """The facts offered at this hop: touching facts (pre-ranked, capped) and a few dense ones.
 
-    The pre-ranking keeps the best fact of every (relation, direction) kind first, so the
-    policy can always choose any relation, then fills the cap by similarity to the question.
-    ``hidden`` facts are never offered (training hides the fact that states a completion
-    answer, so the policy learns paths that work without it).
+    One walker's ``candidate_arrays`` (the same arithmetic as a batch of them).  ``hidden``
+    facts are never offered (training hides the fact that states a completion answer, so the
+    policy learns paths that work without it).
     """
-    e = walker.entity
-    key = e
-    if prerank_cache is not None and key in prerank_cache:
-        facts, dirs = prerank_cache[key]
-    else:
-        facts, dirs = graph.neighbours(e)
-        facts = np.asarray(facts, np.int64)
-        dirs = np.asarray(dirs, np.int8)
-        if len(facts) > 0:
-            sims = np.asarray(graph.fact_vecs[facts]) @ qvec
-            order = np.argsort(-sims, kind="stable")
-            if len(facts) > cap:
-                kind = graph.rel[facts[order]].astype(np.int64) * 2 + dirs[order]
-                _, first = np.unique(kind, return_index=True)
-                firsts = order[np.sort(first)][:cap]
-                rest = np.setdiff1d(order, firsts, assume_unique=True)
-                rest = rest[np.argsort(-sims[rest], kind="stable")]
-                order = np.concatenate([firsts, rest])[:cap]
-            facts, dirs = facts[order], dirs[order]
-        if prerank_cache is not None:
-            prerank_cache[key] = (facts, dirs)
-    fetched = set(walker.fetched)
-    if fetched or hidden:
-        keep = ~np.isin(facts, np.fromiter(fetched | set(hidden), np.int64))
-        facts, dirs = facts[keep], dirs[keep]
-    is_dense = np.zeros(len(facts), np.float32)
-    if dense and hop == 0 and graph.n_facts:  # at the start only: recovers a poor entity link
-        dkey = ("dense", walker.fetched)
-        if prerank_cache is not None and dkey in prerank_cache:
-            extra = prerank_cache[dkey]
-        else:
-            query = qvec + (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0)
-                            if walker.fetched else 0.0)
-            query = query / max(float(np.linalg.norm(query)), 1e-9)
-            extra = graph.dense_search(query, DENSE_K + cap, exclude=fetched | hidden)
-            if prerank_cache is not None:
-                prerank_cache[dkey] = extra
-        offered = set(map(int, facts))
-        extra = np.array([f for f in extra if int(f) not in offered][:DENSE_K], np.int64)
-        if len(extra):
-            facts = np.concatenate([facts, extra, extra])
-            dirs = np.concatenate([dirs, np.zeros(len(extra), np.int8), np.ones(len(extra), np.int8)])
-            is_dense = np.concatenate([is_dense, np.ones(2 * len(extra), np.float32)])
-    nexts = np.where(dirs == 0, graph.obj[facts], graph.subj[facts]).astype(np.int64)
-    fv = np.asarray(graph.fact_vecs[facts]) if len(facts) else np.zeros((0, qvec.shape[0]), np.float32)
-    rv = np.asarray(graph.relation_vecs[graph.rel[facts]]) if len(facts) else fv
-    visited = set(walker.visited) | {e}
-    deg = (graph.adj_ptr[nexts + 1] - graph.adj_ptr[nexts]).astype(np.float32)
-    kind = graph.rel[facts].astype(np.int64) * 2 + dirs
-    _, kinv, kcnt = np.unique(kind, return_inverse=True, return_counts=True)
-    kind_count = kcnt[kinv.reshape(-1)].astype(np.float32)
-    # How well the fetched path covers the question, and how much each candidate would add:
-    # a path that already says what the question asks is a reason to stop.
-    path = (np.asarray(graph.fact_vecs[list(walker.fetched)]).sum(0) if walker.fetched
-            else np.zeros_like(qvec))
-    cover = _cos(path, qvec)
-    before = (_cos(path - np.asarray(graph.fact_vecs[walker.fetched[-1]]), qvec)
-              if walker.fetched else 0.0)
-    with_c = path[None, :] + fv
-    gain = (with_c @ qvec) / np.maximum(np.linalg.norm(with_c, axis=1), 1e-9) - cover
-    feats = np.stack([
-        fv @ qvec,                                               # text similar to the question
-        rv @ qvec,                                               # relation similar to the question
-        dirs.astype(np.float32),                                 # inverse direction
-        is_dense,                                                # offered by dense search
-        np.isin(nexts, np.fromiter(visited, np.int64)).astype(np.float32),  # goes back somewhere visited
-        np.isin(nexts, np.fromiter(linked, np.int64)).astype(np.float32),   # goes to an entity the question names
-        np.log1p(deg) / 5.0,                                     # how connected the next entity is
-        np.full(len(facts), (hop + 1) / max_hops, np.float32),   # how far into the walk
-        -np.log(kind_count),                                     # share of its (relation, direction) kind
-        gain,                                                    # what it adds to the path's cover
-    ], axis=1).astype(np.float32) if len(facts) else np.zeros((0, N_CHEAP), np.float32)
-    stop_feats = np.array([hop == 0, e in linked, hop / max_hops,
-                           np.log1p(graph.degree(e)) / 5.0, cover, cover - before], np.float32)
-    return Candidates(facts, dirs, nexts, feats, stop_feats, e)
+    a = candidate_arrays(graph, [walker], np.asarray(qvec, np.float32)[None, :], hop, max_hops,
+                         [linked], [hidden], [prerank_cache], dense=dense, cap=cap)
+    return Candidates(a["facts"], a["dirs"], a["nexts"], a["feats"], a["stop_feats"][0],
+                      walker.entity)
 
 
 def pad_candidates(cands: list) -> dict:
@@ -559,33 +739,53 @@ def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) 
 
     ``encode`` maps a list of texts to unit vectors.  With ``hide_answers`` (training on
     completion questions) the facts that state the answer directly are hidden.
+
+    Every text is encoded once however many questions share it (questions of one template
+    share their masked wording), and in one encoder call: the raw questions, the masked
+    wordings and their words together.  Only a question that names no entity needs its raw
+    vector before it can be masked (the dense entity link); those take a second call.
     """
-    raw = encode([q.text for q in questions]) if questions else np.zeros((0, 0), np.float32)
-    starts, masked = [], []
-    for q, v in zip(questions, raw):
+    vec: dict = {}
+
+    def encode_new(texts):
+        todo = list(dict.fromkeys(t for t in texts if t not in vec))
+        if todo:
+            vec.update(zip(todo, encode(todo)))
+
+    starts: list = [None] * len(questions)
+    for i, q in enumerate(questions):
         if q.is_completion:
             s = graph.entity_index(q.subject)
-            st = [s] if s is not None else []
+            starts[i] = [s] if s is not None else []
         else:
-            st = graph.link(q.text, v)
-        starts.append(st)
-        masked.append(mask_names(q.text, [graph.entity_names[e] for e in st]))
-    same = [m == q.text for m, q in zip(masked, questions)]
-    todo = [m for m, sm in zip(masked, same) if not sm]
-    mvecs = iter(encode(todo)) if todo else iter(())
-    words = [question_words(m) for m in masked]
-    vocab = sorted({w for ws in words for w in ws})
-    wvec = dict(zip(vocab, encode(vocab))) if vocab else {}
-    dim = raw.shape[1] if len(raw) else 0
+            st = graph.link(q.text)  # by name; no vector needed
+            if st or len(graph.entity_vecs) == 0:
+                starts[i] = st
+    masked = [None if st is None else mask_names(q.text, [graph.entity_names[e] for e in st])
+              for q, st in zip(questions, starts)]
+    words = [None if m is None else question_words(m) for m in masked]
+    encode_new([q.text for q in questions]
+               + [m for m in masked if m is not None]
+               + [w for ws in words if ws is not None for w in ws])
+    late = [i for i, st in enumerate(starts) if st is None]
+    for i in late:  # the dense entity link, with the question's vector
+        q = questions[i]
+        starts[i] = graph.link(q.text, vec[q.text])
+        masked[i] = mask_names(q.text, [graph.entity_names[e] for e in starts[i]])
+        words[i] = question_words(masked[i])
+    if late:
+        encode_new([masked[i] for i in late] + [w for i in late for w in words[i]])
+    dim = len(next(iter(vec.values()))) if vec else 0
     out = []
-    for q, v, st, sm, ws in zip(questions, raw, starts, same, words):
-        qstate = np.asarray(v if sm else next(mvecs), np.float32)
+    for q, st, m, ws in zip(questions, starts, masked, words):
+        v = vec[q.text]
+        qstate = np.asarray(vec[m], np.float32)
         gold = frozenset(e for e in (graph.entity_index(a) for a in q.answers) if e is not None)
         hidden = hidden_facts(graph, st[0], q.relation, gold) if (
             hide_answers and q.is_completion and st) else frozenset()
         qrel = graph.relation_names.index(q.relation) if q.is_completion and \
             q.relation in graph.relation_names else -1
-        wv = np.array([wvec[w] for w in ws], np.float32).reshape(len(ws), dim)
+        wv = np.array([vec[w] for w in ws], np.float32).reshape(len(ws), dim)
         stated = stated_answers(graph, st[0], q.relation, hidden) if (
             q.is_completion and st) else frozenset()
         out.append(Episode(np.asarray(v, np.float32), qstate, st, gold, hidden, q.hops, qrel,

@@ -54,6 +54,24 @@ def exact_search(vecs: np.ndarray, query: np.ndarray, k: int) -> np.ndarray:
     return top[np.argsort(-sims[top], kind="stable")].astype(np.int64)
 
 
+def exact_search_many(vecs: np.ndarray, queries: np.ndarray, ks) -> list:
+    """``exact_search`` for many queries: one matrix product for all of them."""
+    n = len(vecs)
+    if n == 0 or len(queries) == 0:
+        return [np.zeros(0, np.int64) for _ in range(len(queries))]
+    sims = np.asarray(vecs) @ np.asarray(queries, np.float32).T  # [n, m]
+    out = []
+    for i, k in enumerate(ks):
+        k = min(n, int(k))
+        if k <= 0:
+            out.append(np.zeros(0, np.int64))
+            continue
+        s = sims[:, i]
+        top = np.argpartition(-s, k - 1)[:k]
+        out.append(top[np.argsort(-s[top], kind="stable")].astype(np.int64))
+    return out
+
+
 class IVFIndex:
     """k-means centroids and, per centroid, the rows assigned to it with their vectors.
 
@@ -156,6 +174,51 @@ class IVFIndex:
         # ties broken by row, as the exact scan's stable sort does
         top = top[np.lexsort((rows[top], -scores[top]))]
         return rows[top]
+
+    def search_many(self, queries: np.ndarray, ks) -> list:
+        """``search`` for many queries: each probed list is scored once for all the queries
+        probing it (one matrix product per list instead of one per list and query).
+        ``ks`` [m]: how many rows each query wants.  The same lists are probed, the same
+        rows scored and ranked as by ``search``."""
+        queries = np.asarray(queries, np.float32)
+        m = len(queries)
+        if m == 0:
+            return []
+        nprobe0 = min(self.n_lists, self.nprobe)
+        order = np.argsort(-(queries @ np.asarray(self.centroids).T), axis=1, kind="stable")
+        ptr = self.list_ptr
+        probes = []
+        for i in range(m):
+            nprobe = nprobe0
+            sizes = ptr[order[i] + 1] - ptr[order[i]]
+            while nprobe < self.n_lists and int(sizes[:nprobe].sum()) < ks[i]:
+                nprobe *= 2
+            probes.append(order[i, :nprobe])
+        who: dict = {}  # list -> the queries probing it
+        for i, lists in enumerate(probes):
+            for c in lists.tolist():
+                who.setdefault(c, []).append(i)
+        part: dict = {}
+        for c, qs in who.items():
+            block = self.list_vecs[ptr[c]:ptr[c + 1]] @ queries[qs].T  # [list size, len(qs)]
+            for j, i in enumerate(qs):
+                part[(i, c)] = block[:, j]
+        out = []
+        for i, lists in enumerate(probes):
+            k = int(ks[i])
+            if k <= 0 or len(lists) == 0:
+                out.append(np.zeros(0, np.int64))
+                continue
+            scores = np.concatenate([part[(i, c)] for c in lists.tolist()])
+            rows = np.concatenate([self.list_rows[ptr[c]:ptr[c + 1]] for c in lists]).astype(np.int64)
+            k = min(k, len(rows))
+            if k == 0:
+                out.append(rows)
+                continue
+            top = np.argpartition(-scores, k - 1)[:k]
+            top = top[np.lexsort((rows[top], -scores[top]))]
+            out.append(rows[top])
+        return out
 
     # -- files: plain .npy (no pickle) plus a small JSON ------------------------------------
     def save(self, folder: Path) -> None:

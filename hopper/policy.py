@@ -368,7 +368,10 @@ class Policy:
         self.version = version
 
     @classmethod
-    def read(cls, con, version: int | None = None) -> "Policy | None":
+    def read(cls, con, version: int | None = None, known: dict | None = None) -> "Policy | None":
+        """The active policy (or ``version``).  ``known`` holds policies read before, keyed
+        by version and settings (which name the training run): a stored policy never changes,
+        so one found there is not read again (a replaced store's "v1" is another key)."""
         import json
 
         from .store import first
@@ -381,6 +384,9 @@ class Policy:
                               [version]))
         if row is None:
             return None
+        key = (row[0], row[1])
+        if known is not None and key in known:
+            return known[key]
         params = {}
         for name, shape, dtype, data in con.execute(
                 "SELECT name, shape, dtype, data FROM policy_tensors WHERE version = ?",
@@ -402,7 +408,10 @@ class Policy:
             from .errors import InputError
             raise InputError(f"policy v{row[0]} was made by another version of hopper (it lacks "
                              f"{', '.join(sorted(missing))})", hint="train a new policy")
-        return cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
+        policy = cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
+        if known is not None:
+            known[key] = policy
+        return policy
 
 
 def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None,

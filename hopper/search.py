@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import policy as pol
-from .env import Episode, Graph, Walker, candidates, pad_candidates
+from .env import Episode, Graph, Walker, candidates_batch
 
 N_ALTERNATIVES = 5   # facts passed over, recorded per hop
 BEAM = 16
@@ -40,14 +40,6 @@ class Outcome:
     n_fetches: float = 0.0      # fetches behind the answer
 
 
-@dataclass
-class _Beam:
-    walker: Walker
-    h: np.ndarray
-    logp: float
-    steps: tuple = ()
-
-
 def _alternatives(probs: np.ndarray, facts: np.ndarray, chosen: int, order=None) -> list:
     """The best options passed over at one hop: index 0 is STOP, index j > 0 is facts[j - 1].
 
@@ -72,71 +64,135 @@ def _finish(ranked_scores: dict, best_path: dict, starts: list) -> Outcome:
         return Outcome([], [], starts, 0.0, True, "no walk reached an answer")
     top = ranked[0][0]
     conf = ranked[0][1] / total if total > 0 else 0.0
-    path = best_path[top]
-    return Outcome(ranked, list(path), starts, conf, False, None, float(len(path)))
+    path = [s.fetch() if isinstance(s, _Step) else s for s in best_path[top]]
+    return Outcome(ranked, path, starts, conf, False, None, float(len(path)))
+
+
+@dataclass
+class _Step:
+    """One hop of a beam, kept cheap; made into a ``Fetch`` only for the answer's path."""
+
+    hop: int
+    fact: int
+    direction: int
+    from_entity: int
+    to_entity: int
+    logp: np.ndarray     # log pi over [STOP, candidates...] of the walker that took it
+    facts: np.ndarray    # that walker's candidate facts (padded with -1)
+    chosen: int          # index into logp (1 + candidate)
+
+    def fetch(self) -> Fetch:
+        probs = np.exp(self.logp)
+        order = np.argsort(-probs, kind="stable")
+        return Fetch(self.hop, self.fact, self.direction, float(probs[self.chosen]),
+                     self.from_entity, self.to_entity,
+                     _alternatives(probs, self.facts, self.chosen, order))
 
 
 def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
                 max_hops: int | None = None, relmap: np.ndarray | None = None) -> Outcome:
     """Beam search over fetch sequences; an answer's score sums the beams that end on it."""
-    qvec, starts, hidden, qrel = ep.qvec, ep.starts, ep.hidden, ep.qrel
-    if not starts:
-        return Outcome([], [], starts, 0.0, True, "no entity of the store is named in the question")
+    return beam_search_many(graph, policy, [ep], beam=beam, max_hops=max_hops, relmap=relmap)[0]
+
+
+QUESTIONS_PER_BATCH = 256  # bounds the arrays of one hop (beams x candidates) for long lists
+
+
+def beam_search_many(graph: Graph, policy: pol.Policy, eps: list, beam: int = BEAM,
+                     max_hops: int | None = None, relmap: np.ndarray | None = None) -> list:
+    """``beam_search`` for many questions at once: each hop scores the live beams of every
+    question in one batch (candidates and the policy's forward pass), so a batch of
+    questions costs a few large array operations instead of many small ones.  Each
+    question's beams, scores and answers are its own, as if it were searched alone."""
+    relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
+    out: list = []
+    for a in range(0, len(eps), QUESTIONS_PER_BATCH):
+        out += _beam_search_batch(graph, policy, eps[a:a + QUESTIONS_PER_BATCH], beam,
+                                  max_hops, relmap)
+    return out
+
+
+def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
+                       max_hops: int | None, relmap: np.ndarray) -> list:
     P = policy.params
     ops = pol.NumpyOps
     T = min(max_hops or policy.max_hops, policy.max_hops)
-    relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
     entmap = _entity_map(policy, graph)
-    linked = frozenset(starts)
+    cap = int(policy.settings.get("adj_cap", 32))
     H = P["W_h"].shape[0]
-    x = pol.question_features(P, ep.qstate, ep.word_vecs)
-    live = [_Beam(Walker(s, (), (s,)), np.zeros(H, np.float32), -math.log(len(starts)))
-            for s in starts]
-    finished: list[_Beam] = []
-    cache: dict = {}  # pre-ranked neighbours and dense results, shared by this question's beams
+    outs: list = [None] * len(eps)
+    todo = []
+    for k, ep in enumerate(eps):
+        if not ep.starts:
+            outs[k] = Outcome([], [], ep.starts, 0.0, True,
+                              "no entity of the store is named in the question")
+        else:
+            todo.append(k)
+    if not todo:
+        return outs
+    X = {k: pol.question_features(P, eps[k].qstate, eps[k].word_vecs) for k in todo}
+    linked = {k: frozenset(eps[k].starts) for k in todo}
+    caches = {k: {} for k in todo}  # pre-ranked neighbours and dense results, per question
+    qrel = {k: (relmap[eps[k].qrel] if eps[k].qrel >= 0 else -1) for k in todo}
+    # The live beams of all questions, question by question: owner, walker, memory, log-prob, steps
+    own = [k for k in todo for _ in eps[k].starts]
+    walkers = [Walker(s, (), (s,)) for k in todo for s in eps[k].starts]
+    hs = np.zeros((len(own), H), np.float32)
+    lps = [-math.log(len(eps[k].starts)) for k in own]
+    steps = [() for _ in own]
+    finished: dict = {k: [] for k in todo}  # [(log-prob, entity, steps)]
     for t in range(T):
-        if not live:
+        if not own:
             break
-        cap = int(policy.settings.get("adj_cap", 32))
-        cands = [candidates(graph, b.walker, qvec, t, T, linked, hidden, prerank_cache=cache,
-                            cap=cap) for b in live]
-        batch = pad_candidates(cands)
-        n = len(live)
-        logp, crepr = pol.step(P, ops, graph, relmap, np.repeat(x[None, :], n, 0),
-                               np.stack([b.h for b in live]), np.full(n, t), batch,
-                               qrel=np.full(n, relmap[qrel] if qrel >= 0 else -1), entmap=entmap,
-                               start=[b.walker.visited[0] for b in live], stated=[ep.stated] * n)
-        # Score every expansion first; build walkers, memories and alternatives only for the
-        # `beam` that survive (the same ones, in the same order, as building all of them).
-        expansions: list[tuple[float, int, int]] = []
-        for i, b in enumerate(live):
-            lp = logp[i]
-            finished.append(_Beam(b.walker, b.h, b.logp + float(lp[0]), b.steps))
-            order = np.argsort(-lp[1:1 + len(cands[i].facts)], kind="stable")[:beam]
-            expansions += [(b.logp + float(lp[1 + j]), i, int(j)) for j in order]
-        expansions.sort(key=lambda x: -x[0])
-        nxt: list[_Beam] = []
-        ranked: dict = {}  # per walker: its options sorted best first, for the alternatives
-        for lpj, i, j in expansions[:beam]:
-            b, c = live[i], cands[i]
-            probs = np.exp(logp[i])
-            if i not in ranked:
-                ranked[i] = np.argsort(-probs, kind="stable")
-            f, d, e = int(c.facts[j]), int(c.dirs[j]), int(c.nexts[j])
-            fetch = Fetch(t, f, d, float(probs[1 + j]), b.walker.entity, e,
-                          _alternatives(probs, batch["facts"][i], 1 + j, ranked[i]))
-            w = Walker(e, b.walker.fetched + (f,), b.walker.visited + (e,))
-            h = pol.next_memory(P, ops, b.h, crepr[i, j])
-            nxt.append(_Beam(w, h, lpj, b.steps + (fetch,)))
-        live = nxt
-    finished += live  # the hop limit ends every walk where it stands
-    scores: dict = {}
-    best: dict = {}
-    for b in sorted(finished, key=lambda b: -b.logp):
-        e = b.walker.entity
-        scores[e] = scores.get(e, 0.0) + math.exp(b.logp)
-        best.setdefault(e, b.steps)
-    return _finish(scores, best, starts)
+        n = len(own)
+        batch = candidates_batch(graph, walkers, np.stack([eps[k].qvec for k in own]), t, T,
+                                 [linked[k] for k in own], [eps[k].hidden for k in own],
+                                 [caches[k] for k in own], cap=cap)
+        logp, crepr = pol.step(P, ops, graph, relmap, np.stack([X[k] for k in own]), hs,
+                               np.full(n, t), batch, qrel=np.array([qrel[k] for k in own]),
+                               entmap=entmap, start=[w.visited[0] for w in walkers],
+                               stated=[eps[k].stated for k in own])
+        counts = batch["counts"]
+        for i, k in enumerate(own):
+            finished[k].append((lps[i] + float(logp[i, 0]), walkers[i].entity, steps[i]))
+        # Each beam's best `beam` expansions, then per question the best `beam` of those,
+        # ties kept in the order (beam, rank): as sorting one question's list stably would.
+        order = np.argsort(-logp[:, 1:], axis=1, kind="stable")[:, :beam]
+        rank = np.broadcast_to(np.arange(order.shape[1]), order.shape)
+        ok = order < counts[:, None]
+        rows = np.broadcast_to(np.arange(n)[:, None], order.shape)[ok]
+        cols, rank = order[ok], rank[ok]
+        score = np.asarray(lps, np.float64)[rows] + logp[rows, 1 + cols].astype(np.float64)
+        qid = np.asarray(own)[rows]
+        sel = np.lexsort((rank, rows, -score, qid))
+        qs_sorted = qid[sel]
+        first_of = np.r_[0, np.flatnonzero(qs_sorted[1:] != qs_sorted[:-1]) + 1]
+        place = np.arange(len(sel)) - np.repeat(first_of, np.diff(np.r_[first_of, len(sel)]))
+        sel = sel[place < beam]
+        rows, cols, score = rows[sel], cols[sel], score[sel]
+        if len(rows):
+            hs = pol.next_memory(P, ops, hs[rows], crepr[rows, cols]).astype(np.float32)
+        else:
+            hs = np.zeros((0, H), np.float32)
+        facts, dirs, nexts = batch["facts"], batch["dirs"], batch["nexts"]
+        new_own, new_walkers, new_steps = [], [], []
+        for i, j in zip(rows.tolist(), cols.tolist()):
+            w = walkers[i]
+            f, d, e = int(facts[i, j]), int(dirs[i, j]), int(nexts[i, j])
+            new_own.append(own[i])
+            new_walkers.append(Walker(e, w.fetched + (f,), w.visited + (e,)))
+            new_steps.append(steps[i] + (_Step(t, f, d, w.entity, e, logp[i], facts[i], 1 + j),))
+        own, walkers, steps, lps = new_own, new_walkers, new_steps, score.tolist()
+    for i, k in enumerate(own):  # the hop limit ends every walk where it stands
+        finished[k].append((lps[i], walkers[i].entity, steps[i]))
+    for k in todo:
+        scores: dict = {}
+        best: dict = {}
+        for lp, e, st in sorted(finished[k], key=lambda b: -b[0]):
+            scores[e] = scores.get(e, 0.0) + math.exp(lp)
+            best.setdefault(e, st)
+        outs[k] = _finish(scores, best, eps[k].starts)
+    return outs
 
 
 def _entity_map(policy: pol.Policy, graph: Graph):

@@ -9,7 +9,18 @@ import random
 import time
 from pathlib import Path
 
-import duckdb
+try:
+    # The engine alone (~20 ms to import), not the duckdb package's Python layer over it
+    # (~100 ms more: its relation API, and its version read through importlib.metadata).
+    # Everything here is plain connect/execute/fetch, which the engine module provides (the
+    # package re-exports these very objects).  Code that builds relations (``con.sql``,
+    # ``register``: load, reading a store into a graph) imports ``duckdb`` itself, which
+    # extends connections made before it too.
+    import _duckdb as duckdb
+
+    duckdb.connect, duckdb.Error, duckdb.CatalogException, duckdb.BinderException  # noqa: B018
+except (ImportError, AttributeError):  # another build of duckdb: the package, as usual
+    import duckdb
 
 from .errors import InputError, StoreBusyError
 
@@ -263,11 +274,15 @@ class Store:
 
     @staticmethod
     def _has_schema(con) -> bool:
-        row = first(con.execute("SELECT count(*) FROM information_schema.tables "
-                          "WHERE table_name = 'meta' AND table_schema = 'main'"))
-        if not row[0]:
-            return False
-        return first(con.execute("SELECT count(*) FROM meta WHERE key = 'schema_version'"))[0] > 0
+        # One query on the table itself (information_schema views cost ~10-20 ms each on a
+        # busy machine, on every connection of every command).
+        try:
+            return first(con.execute("SELECT count(*) FROM main.meta "
+                                     "WHERE key = 'schema_version'"))[0] > 0
+        except duckdb.CatalogException:
+            return False  # no table main.meta
+        except duckdb.BinderException:
+            return False  # a table named meta of another shape
 
     def _ensure_schema(self, con) -> None:
         if self._has_schema(con):
@@ -288,11 +303,12 @@ class Store:
     @staticmethod
     def _add_columns(con) -> None:
         """Bring a store made before a column was added up to date (write connections only)."""
-        have = {(t, c) for t, c in con.execute(
-            "SELECT table_name, column_name FROM information_schema.columns "
-            "WHERE table_schema = 'main'").fetchall()}
         for table, column, kind in _ADDED_COLUMNS:
-            if (table, column) not in have and any(t == table for t, _ in have):
+            try:
+                first(con.execute(f"SELECT {column} FROM main.{table} LIMIT 0"))
+            except duckdb.CatalogException:
+                continue  # no such table (yet): nothing to bring up to date
+            except duckdb.BinderException:  # the table lacks the column
                 con.execute(f"ALTER TABLE {table} ADD COLUMN {column} {kind}")
 
     # -- small helpers -------------------------------------------------------------------

@@ -335,12 +335,11 @@ def _numpy_params(P) -> dict:
 
 def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
     """Beam-search every episode; return (Hits@1, MRR, [(confidence, correct)])."""
-    from .search import beam_search
+    from .search import beam_search_many
 
     relmap = policy.relation_map(graph.relation_names)
     hits, rr, conf = [], [], []
-    for ep in eps:
-        out = beam_search(graph, policy, ep, beam=beam, relmap=relmap)
+    for ep, out in zip(eps, beam_search_many(graph, policy, eps, beam=beam, relmap=relmap)):
         h, r = hits_and_rank(out, ep.gold)
         hits.append(h)
         rr.append(r)

@@ -30,7 +30,7 @@ from bench_completion import cores, cpu_model  # noqa: E402
 BENCH = ROOT / ".bench"
 DEMO = ROOT / "factstores" / "supply"
 HOPPER = [sys.executable, "-m", "hopper.cli"]
-SIZES = {"10k": 10_000, "100k": 100_000}
+SIZES = {"10k": 10_000, "100k": 100_000, "1m": 1_000_000}  # 1m: see DEVELOPERS.md before running it
 ENV = dict(os.environ, OPENBLAS_NUM_THREADS="1", HF_HUB_OFFLINE="1", PYTHONPATH=str(ROOT))
 
 NAIVE = (

@@ -228,3 +228,36 @@ def test_missing_model_package_is_a_clear_error(monkeypatch):
         embed.model_dir()
     with pytest.raises(embed.EmbedError):
         embed.Encoder("auto")
+
+
+def test_an_encoder_for_a_few_texts_gives_the_same_vectors(fast):
+    """A cold ask's encoder skips onnxruntime's weight pre-packing (a quicker session); its
+    vectors are those of the pre-packed one, and a large job switches it to pre-packing."""
+    texts = ["Who makes part KX-2041?", "in", "which", "city", "Lévi-Strauss était un anthropologue.",
+             "?", " ".join(["a long text"] * 50)]
+    few = embed.Encoder("fast", few=True)
+    assert few._fast.prepacked is False
+    a, b = few.encode(texts, few=True), fast.encode(texts)
+    assert few._fast.prepacked is False
+    assert np.min(np.sum(a * b, axis=1)) > 0.99999 and np.abs(a - b).max() < 1e-5
+    few.encode(["text %d" % i for i in range(embed.FEW_TEXTS + 1)], few=True)
+    assert few._fast.prepacked is True
+    many_small, eight = embed.Encoder("fast", few=True), texts + ["one more"]
+    for i in range(embed.FEW_TEXTS // 8):  # warm asks in one process: 64 texts so far
+        many_small.encode(eight, few=True)
+    assert many_small._fast.prepacked is False
+    many_small.encode(eight, few=True)
+    assert many_small._fast.prepacked is True
+    other = embed.Encoder("fast", few=True)  # a job not marked few (load, train): pre-packed
+    other.encode(eight)
+    assert other._fast.prepacked is True
+    assert np.abs(few.encode(texts) - b).max() < 1e-5
+
+
+def test_batches_do_not_pad_short_texts_to_long_ones():
+    lengths = np.array([16, 15, 3, 3, 4, 9, 8, 2, 16, 30])
+    order = np.argsort(-lengths, kind="stable")
+    got = [lengths[b].tolist() for b in embed._batches(order, lengths, 64)]
+    assert got == [[30, 16, 16, 15], [9, 8], [4, 3, 3, 2]]
+    assert [len(b) for b in embed._batches(order, lengths, 3)] == [3, 3, 3, 1]
+    assert sorted(np.concatenate(embed._batches(order, lengths, 2)).tolist()) == list(range(10))

@@ -177,3 +177,16 @@ def test_ask_reads_the_index_without_sklearn_or_torch(indexed_copy):
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip()
+
+
+def test_search_many_finds_what_search_finds(demo_vectors, demo_index):
+    """Batch answering scores each probed list once for all queries (and the exact scan in
+    one product): the rows found, and their order, are those of one query at a time."""
+    from hopper.index import exact_search_many
+
+    vecs, queries = demo_vectors
+    qs, ks = queries[:60], [10, 13, 1, 40] * 15
+    for got, q, k in zip(demo_index.search_many(qs, ks), qs, ks):
+        assert got.tolist() == demo_index.search(q, k).tolist()
+    for got, q, k in zip(exact_search_many(vecs, qs, ks), qs, ks):
+        assert got.tolist() == exact_search(vecs, q, k).tolist()

@@ -153,3 +153,60 @@ def test_stated_answers_change_scores_alike_on_numpy_and_torch(tiny_graph):
     empty, _ = pol.step(params, pol.NumpyOps, tiny_graph, relmap, Q, h, np.zeros(n, int), batch,
                         stated=[frozenset(), frozenset()])
     assert np.allclose(empty, plain)
+
+
+def test_candidates_of_a_batch_are_each_walkers_own(tiny_graph):
+    """candidates_batch (beam search, many walkers and questions) gives every walker the
+    facts and features that candidates() gives it alone."""
+    from hopper.env import candidates_batch
+
+    g = tiny_graph
+    rng = np.random.default_rng(1)
+    qs = rng.standard_normal((2, 16)).astype(np.float32)
+    qs /= np.linalg.norm(qs, axis=1, keepdims=True)
+    a, b, d = g.entity_index("a"), g.entity_index("b"), g.entity_index("d")
+    f_ab = int(np.flatnonzero((g.subj == a) & (g.obj == b))[0])
+    walkers = [Walker(a, (), (a,)), Walker(b, (f_ab,), (a, b)), Walker(d, (), (d,))]
+    owner = [0, 0, 1]
+    linked = [frozenset([a]), frozenset([a]), frozenset([d])]
+    hidden = [frozenset(), frozenset(), frozenset([f_ab])]
+    for hop in (0, 1):
+        batch = candidates_batch(g, walkers, qs[owner], hop, 3, linked, hidden, [{}, {}, {}], cap=2)
+        for i, w in enumerate(walkers):
+            c = candidates(g, w, qs[owner[i]], hop, 3, linked[i], hidden[i], cap=2)
+            n = len(c.facts)
+            assert batch["counts"][i] == n and batch["mask"][i].sum() == n
+            assert (batch["facts"][i, :n] == c.facts).all() and (batch["nexts"][i, :n] == c.nexts).all()
+            assert np.allclose(batch["feats"][i, :n], c.feats, atol=1e-6)
+            assert np.allclose(batch["stop_feats"][i], c.stop_feats, atol=1e-6)
+            if i > 0:  # fetched (walker 1) or hidden (walker 2): never offered again
+                assert f_ab not in set(c.facts.tolist())
+
+
+def test_a_policy_read_before_is_not_read_again():
+    """Warm asks in one process keep the policy they read; a new version or another store's
+    policy of the same number is read afresh."""
+    import datetime
+
+    import duckdb
+
+    from hopper.store import SCHEMA
+
+    def store():
+        con = duckdb.connect(":memory:")
+        con.execute(SCHEMA)
+        return con
+
+    now = datetime.datetime(2026, 1, 1)
+    params = pol.init_params(16, 8, 2, 3, seed=0)
+    con, known = store(), {}
+    pol.Policy(params, {"train_run": "a"}).save(con, 1, now)
+    first = pol.Policy.read(con, known=known)
+    assert pol.Policy.read(con, known=known) is first
+    pol.Policy(params, {"train_run": "b"}).save(con, 2, now)
+    second = pol.Policy.read(con, known=known)
+    assert second.version == 2 and second is not first
+    assert pol.Policy.read(con, 1, known=known) is first
+    other = store()
+    pol.Policy(params, {"train_run": "c"}).save(other, 1, now)
+    assert pol.Policy.read(other, known=known).settings["train_run"] == "c"

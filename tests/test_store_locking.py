@@ -277,3 +277,22 @@ def test_old_store_gains_direction_column(tmp_path):
     fresh.execute(store_mod.SCHEMA)
     cols = [r[0] for r in fresh.execute("DESCRIBE run_fetches").fetchall()]
     assert cols[-2:] == ["alternatives", "direction"]
+
+
+def test_a_write_connection_adds_a_column_an_old_store_lacks(tmp_path):
+    """Stores made before run_fetches.direction existed get it at their next write; a
+    DuckDB file whose meta table is not hopper's is not taken for a store."""
+    s = Store(tmp_path / "old.duckdb")
+    with s.connect(write=True) as con:
+        con.execute("ALTER TABLE run_fetches DROP COLUMN direction")
+    with s.connect(write=True) as con:
+        cols = [r[0] for r in con.execute("SELECT column_name FROM information_schema.columns "
+                                          "WHERE table_name = 'run_fetches'").fetchall()]
+    assert "direction" in cols
+    other = tmp_path / "other.duckdb"
+    c = duckdb.connect(str(other))
+    c.execute("CREATE TABLE meta (a INTEGER)")
+    c.close()
+    with pytest.raises(InputError, match="not a hopper store|other tables"):
+        with Store(other).connect() as con:
+            pass
