@@ -63,7 +63,13 @@ class TrainSettings:
     #                              "one-answer": an episode per answer, only its facts hidden,
     #                              the other answers visible and unrewarded (as a test meets
     #                              the query, env.one_answer_each); "all-answers": one episode,
-    #                              every answer's facts hidden
+    #                              every answer's facts hidden; "all-then-one": all-answers
+    #                              for the first ``switch_epochs`` epochs, then one-answer
+    switch_epochs: int = 5      # all-answers epochs before "all-then-one" switches
+    stated_reward: float = 0.0  # one-answer episodes: what a walk earns for ending on a stated
+    #                              answer by a path whose last fact does not state it for the
+    #                              asked query (a path that would also find an unstated answer);
+    #                              ending there through the stating fact itself always earns 0
 
     def validate(self) -> None:
         checks = {
@@ -78,7 +84,10 @@ class TrainSettings:
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
             "reward_scorer": self.reward_scorer in ("none", "complex", "complex-softmax"),
             "scorer_epochs": self.scorer_epochs >= 1, "expected_final": self.expected_final >= 0,
-            "completion_episodes": self.completion_episodes in ("one-answer", "all-answers"),
+            "completion_episodes": self.completion_episodes in ("one-answer", "all-answers",
+                                                                 "all-then-one"),
+            "switch_epochs": self.switch_epochs >= 0,
+            "stated_reward": 0 <= self.stated_reward <= 1,
         }
         for name, ok in checks.items():
             if not ok:
@@ -105,7 +114,7 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
             gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
             type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None,
-            extra: dict | None = None):
+            extra: dict | None = None, stated_reward: float = 0.0):
     """Sample K walks per episode with the torch policy ``P``.
 
     ``qx`` maps id(episode) to its question features (``policy.question_features``);
@@ -208,7 +217,7 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
             correct[wrong] = np.maximum(correct[wrong], p[np.arange(len(wrong)), final[wrong]])
     for i in np.flatnonzero(correct < 1):  # an answer a visible fact already states tells nothing
         if final[i] in owner[i].stated:
-            correct[i] = 0.0
+            correct[i] = stated_end_reward(graph, owner[i], walkers[i].fetched, stated_reward)
     if extra is not None:
         extra["expected_final"] = exp_final
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
@@ -237,6 +246,36 @@ def end_rewards(graph: Graph, eps: list, cands: list, width: int, scorer=None) -
         out[m, 0] = r[c.here]
         out[m, 1:1 + len(c.nexts)] = r[c.nexts]
     return out
+
+
+def stated_end_reward(graph: Graph, ep: Episode, fetched: tuple, stated_reward: float) -> float:
+    """The reward of a walk that fetched ``fetched`` and ended on a stated answer of ``ep``:
+    ``stated_reward`` if its last fact is not one stating an answer of the query, else 0."""
+    if stated_reward <= 0 or not fetched or fetched[-1] in _stating_facts(graph, ep):
+        return 0.0
+    return float(stated_reward)
+
+
+def _stating_facts(graph: Graph, ep: Episode) -> frozenset:
+    """The facts that state an answer of the episode's (start, asked relation) query."""
+    from . import env  # looked up at call time: a benchmark may read answers both ways
+
+    got = ep.prerank.get("stating")
+    if got is None:
+        got = frozenset(env.answer_facts(graph, ep.starts[0], graph.relation_names[ep.qrel]))
+        ep.prerank["stating"] = got
+    return got
+
+
+def epoch_episodes(settings: TrainSettings, epoch: int, all_eps: list, one_eps: list) -> list:
+    """The completion episodes an epoch (counted from 0) trains on.  "all-then-one" is a
+    curriculum: every answer of a query hidden and rewarded at once (several rewarded ends,
+    so early random walks find some) for the first ``switch_epochs`` epochs, then one episode
+    per stated answer (``env.one_answer_each``: the query as the filtered test asks it)."""
+    mode = settings.completion_episodes
+    if mode == "all-answers" or (mode == "all-then-one" and epoch < settings.switch_epochs):
+        return all_eps
+    return one_eps
 
 
 def _candidates_cached(graph: Graph, walker: Walker, ep: Episode, t: int, T: int, cap: int):
@@ -450,7 +489,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         raise InputError("no training question names an entity of the store with a known answer",
                          field="questions", hint="check the questions match the loaded facts")
     questions = train_eps  # one per question (the question views and the scorer are fitted on these)
-    if settings.completion_episodes == "one-answer":
+    all_eps = train_eps
+    if settings.completion_episodes in ("one-answer", "all-then-one"):
         from .env import one_answer_each
 
         train_eps = one_answer_each(graph, train_eps)
@@ -486,7 +526,9 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         if log:
             log(f"reward scorer (ComplEx) fitted in {time.monotonic() - t0:.0f} s")
     frozen = set(pol.FIXED) | (set() if settings.entity_embed else {"N_c", "N_z", "N_s"})
-    qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs) for e in train_eps}
+    qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs)
+          for e in (train_eps + all_eps if all_eps is not train_eps else train_eps)}
+    one_eps = train_eps
     P = {k: torch.tensor(v, requires_grad=k not in frozen) for k, v in init.items()}
     opt = torch.optim.Adam([v for k, v in P.items() if k not in frozen], lr=settings.lr)
     ops = pol.TorchOps()
@@ -510,6 +552,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
             log(f"resuming after epoch {start_epoch}" + (" (training had ended)" if finished else ""))
     started = time.monotonic() - spent
     n_batches = math.ceil(len(train_eps) / settings.batch_questions)
+    curriculum = settings.completion_episodes == "all-then-one"
     bar = None
     if progress and not finished:
         from tqdm import tqdm
@@ -518,6 +561,9 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
     for epoch in range(start_epoch, settings.epochs):
         if finished:
             break
+        if curriculum:
+            train_eps = epoch_episodes(settings, epoch, all_eps, one_eps)
+            n_batches = math.ceil(len(train_eps) / settings.batch_questions)
         order = rng.permutation(len(train_eps))
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
@@ -534,7 +580,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
                 type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
                                                        settings.sentence_dropout, rng),
                 entmap=entmap, scorer=scorer,
-                extra=extra if settings.expected_final > 0 else None)
+                extra=extra if settings.expected_final > 0 else None,
+                stated_reward=settings.stated_reward)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
