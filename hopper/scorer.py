@@ -20,7 +20,6 @@ import numpy as np
 class Scorer:
     """A fitted ComplEx scorer: ``probs(starts, relations)`` -> sigmoid scores [B, entities]."""
 
-    relative = False  # rewards: the softmax share among non-gold entities (else the sigmoid)
 
     def __init__(self, ent: np.ndarray, rel: np.ndarray):
         self.ent = np.asarray(ent, np.float32)   # [N, 2k]: real parts, then imaginary parts

@@ -54,11 +54,8 @@ class TrainSettings:
     entity_embed: bool = False  # learn a vector per entity (fixed entity sets, e.g. UMLS); off
     #                             keeps the policy entity-free, so it carries to unseen entities
     reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
-    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0;
-    #                              "complex-softmax": its softmax share among the non-gold entities
+    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0
     scorer_epochs: int = 200    # training epochs of that scorer
-    expected_final: float = 0.0  # weight of the exact expected reward of the last hop's choice
-    #                              (sum over all its actions, no sampling; 0 = off)
     completion_episodes: str = "one-answer"  # completion questions whose answers facts state:
     #                              "one-answer": an episode per answer, only its facts hidden,
     #                              the other answers visible and unrewarded (as a test meets
@@ -66,10 +63,6 @@ class TrainSettings:
     #                              every answer's facts hidden; "all-then-one": all-answers
     #                              for the first ``switch_epochs`` epochs, then one-answer
     switch_epochs: int = 5      # all-answers epochs before "all-then-one" switches
-    stated_reward: float = 0.0  # one-answer episodes: what a walk earns for ending on a stated
-    #                              answer by a path whose last fact does not state it for the
-    #                              asked query (a path that would also find an unstated answer);
-    #                              ending there through the stating fact itself always earns 0
 
     def validate(self) -> None:
         checks = {
@@ -82,12 +75,11 @@ class TrainSettings:
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
             "question_view": self.question_view in pol.VIEWS,
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
-            "reward_scorer": self.reward_scorer in ("none", "complex", "complex-softmax"),
-            "scorer_epochs": self.scorer_epochs >= 1, "expected_final": self.expected_final >= 0,
+            "reward_scorer": self.reward_scorer in ("none", "complex"),
+            "scorer_epochs": self.scorer_epochs >= 1,
             "completion_episodes": self.completion_episodes in ("one-answer", "all-answers",
                                                                  "all-then-one"),
             "switch_epochs": self.switch_epochs >= 0,
-            "stated_reward": 0 <= self.stated_reward <= 1,
         }
         for name, ok in checks.items():
             if not ok:
@@ -113,17 +105,14 @@ def loo_baseline(returns: np.ndarray, active: np.ndarray) -> np.ndarray:
 
 def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: float,
             gen, rng: np.random.Generator, greedy: bool = False, cap: int = 32,
-            type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None,
-            extra: dict | None = None, stated_reward: float = 0.0):
+            type_reward: float = 0.0, qx: dict | None = None, entmap=None, scorer=None):
     """Sample K walks per episode with the torch policy ``P``.
 
     ``qx`` maps id(episode) to its question features (``policy.question_features``);
     without it they are computed from ``P``'s fixed arrays.  ``entmap``: graph entity -> row
     of the learned entity vectors (None: none).  ``scorer`` (hopper.scorer.Scorer): a walk of a
-    completion question that ends on a wrong entity earns the scorer's probability for it.
-    With ``extra`` (a dict) the last hop's expected final reward, summed exactly over all its
-    actions (``end_rewards``), is put in ``extra["expected_final"]`` ([B] tensor, 0 for walks
-    that stopped earlier).
+    completion question that ends on a wrong entity earns the scorer's probability for it;
+    one that ends on an answer a visible fact already states earns 0.
 
     Returns (log pi(a_t) [B, T] tensor, entropy [B, T] tensor, correct [B], active [B, T],
     final entity [B], fetch counts [B], last hop [B]), with B = len(eps) * K.
@@ -143,7 +132,6 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
     logps, ents = [], []
     active = np.zeros((B, T), np.float32)
     fetches = np.zeros(B, np.int64)
-    exp_final = torch.zeros(B)
     for t in range(T):
         idx = np.flatnonzero(alive)
         step_logp = torch.zeros(B)
@@ -160,10 +148,6 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
                                qrel=qrel, entmap=entmap,
                                start=[walkers[i].visited[0] for i in idx],
                                stated=[owner[i].stated for i in idx])
-        if extra is not None and t == T - 1:  # every action of the last hop ends the walk
-            R = end_rewards(graph, [owner[i] for i in idx], cands, logp.shape[1], scorer)
-            exp_final = exp_final.index_put((torch.as_tensor(idx),),
-                                            (logp.exp() * ops.asarray(R)).sum(-1))
         with torch.no_grad():
             probs = logp.exp()
             if greedy:
@@ -206,65 +190,13 @@ def rollout(P, ops, graph: Graph, relmap, eps: list, K: int, T: int, dropout: fl
         wrong = np.array([i for i in np.flatnonzero(correct < 1) if owner[i].qrel >= 0], np.int64)
         if len(wrong):
             starts_, rels_ = [owner[i].starts[0] for i in wrong], [owner[i].qrel for i in wrong]
-            if getattr(scorer, "relative", False):  # softmax over the entities that are not gold
-                z = scorer.logits(starts_, rels_)
-                for row, i in enumerate(wrong):
-                    z[row, list(owner[i].gold)] = -np.inf
-                z = np.exp(z - z.max(1, keepdims=True))
-                p = np.nan_to_num(z / z.sum(1, keepdims=True))
-            else:
-                p = scorer.probs(starts_, rels_)
+            p = scorer.probs(starts_, rels_)
             correct[wrong] = np.maximum(correct[wrong], p[np.arange(len(wrong)), final[wrong]])
     for i in np.flatnonzero(correct < 1):  # an answer a visible fact already states tells nothing
         if final[i] in owner[i].stated:
-            correct[i] = stated_end_reward(graph, owner[i], walkers[i].fetched, stated_reward)
-    if extra is not None:
-        extra["expected_final"] = exp_final
+            correct[i] = 0.0
     last = np.maximum(active.sum(1).astype(np.int64) - 1, 0)  # the hop of each walk's last decision
     return (torch.stack(logps, 1), torch.stack(ents, 1), correct, active, final, fetches, last)
-
-
-def end_rewards(graph: Graph, eps: list, cands: list, width: int, scorer=None) -> np.ndarray:
-    """The final reward of every action [STOP, candidates...] if the walk ended with it: 1 for
-    a gold entity, else the scorer's reward for it (0 without a scorer).  [n, width]."""
-    out = np.zeros((len(eps), width), np.float32)
-    for m, (ep, c) in enumerate(zip(eps, cands)):
-        r = ep.prerank.get("end_reward")
-        if r is None:
-            r = np.zeros(len(graph.entity_names), np.float32)
-            if scorer is not None and ep.qrel >= 0 and ep.starts:
-                z = scorer.logits([ep.starts[0]], [ep.qrel])[0]
-                if getattr(scorer, "relative", False):
-                    z[list(ep.gold)] = -np.inf
-                    z = np.exp(z - z.max())
-                    r = np.nan_to_num(z / z.sum()).astype(np.float32)
-                else:
-                    r = (1.0 / (1.0 + np.exp(-z))).astype(np.float32)
-            r[list(ep.stated)] = 0.0
-            r[list(ep.gold)] = 1.0
-            ep.prerank["end_reward"] = r
-        out[m, 0] = r[c.here]
-        out[m, 1:1 + len(c.nexts)] = r[c.nexts]
-    return out
-
-
-def stated_end_reward(graph: Graph, ep: Episode, fetched: tuple, stated_reward: float) -> float:
-    """The reward of a walk that fetched ``fetched`` and ended on a stated answer of ``ep``:
-    ``stated_reward`` if its last fact is not one stating an answer of the query, else 0."""
-    if stated_reward <= 0 or not fetched or fetched[-1] in _stating_facts(graph, ep):
-        return 0.0
-    return float(stated_reward)
-
-
-def _stating_facts(graph: Graph, ep: Episode) -> frozenset:
-    """The facts that state an answer of the episode's (start, asked relation) query."""
-    from . import env  # looked up at call time: a benchmark may read answers both ways
-
-    got = ep.prerank.get("stating")
-    if got is None:
-        got = frozenset(env.answer_facts(graph, ep.starts[0], graph.relation_names[ep.qrel]))
-        ep.prerank["stating"] = got
-    return got
 
 
 def epoch_episodes(settings: TrainSettings, epoch: int, all_eps: list, one_eps: list) -> list:
@@ -522,7 +454,6 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         scorer = fit_scorer([(e.starts[0], e.qrel, e.gold) for e in questions if e.qrel >= 0],
                             len(graph.entity_names), n_rel, epochs=settings.scorer_epochs,
                             seed=settings.seed)
-        scorer.relative = settings.reward_scorer == "complex-softmax"
         if log:
             log(f"reward scorer (ComplEx) fitted in {time.monotonic() - t0:.0f} s")
     frozen = set(pol.FIXED) | (set() if settings.entity_embed else {"N_c", "N_z", "N_s"})
@@ -567,7 +498,6 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         order = rng.permutation(len(train_eps))
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
         rewards_seen = []
-        extra: dict = {}
         out_of_time = False
         for bi in range(n_batches):
             if bi and settings.time_budget and time.monotonic() - started > settings.time_budget:
@@ -579,14 +509,10 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
                 type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
                                                        settings.sentence_dropout, rng),
-                entmap=entmap, scorer=scorer,
-                extra=extra if settings.expected_final > 0 else None,
-                stated_reward=settings.stated_reward)
+                entmap=entmap, scorer=scorer)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,
                                   scale=settings.scale_advantage)
-            if settings.expected_final > 0:  # plus the last hop's exact expected reward
-                loss = loss - settings.expected_final * extra["expected_final"].mean()
             opt.zero_grad()
             loss.backward()
             torch.nn.utils.clip_grad_norm_([v for k, v in P.items() if k not in frozen],

@@ -181,40 +181,6 @@ def test_one_answer_each_hides_one_stated_answer_per_episode():
     assert np.all(correct[np.isin(final, [e("b"), e("x")])] == 1.0)
 
 
-def test_stated_answer_earns_only_by_another_path():
-    """With ``stated_reward`` a walk ending on a stated answer earns it when its last fact is
-    not the one stating that answer (a path that also finds unstated answers), and nothing
-    when it simply reads the stating fact."""
-    import numpy as np
-    import torch
-
-    from conftest import make_graph
-    from hopper import policy as pol
-    from hopper import train as tr
-    from hopper.env import Episode, one_answer_each
-
-    g = make_graph([("a", "r", "b"), ("a", "r", "c"), ("b", "s", "c"), ("c", "s", "x"),
-                    ("a", "s", "x")])
-    e = g.entity_index
-    q = np.ones(16, np.float32) / 4.0
-    ep = Episode(q, q, [e("a")], frozenset({e("b"), e("c"), e("x")}), frozenset({0, 1}),
-                 qrel=g.relation_names.index("r"), word_vecs=np.zeros((0, 16), np.float32))
-    first = one_answer_each(g, [ep])[0]  # gold b, x; c stated by fact 1 (a r c)
-    P = {k: torch.tensor(v) for k, v in pol.init_params(16, 8, len(g.relation_names), 2,
-                                                        seed=0).items()}
-    assert tr.stated_end_reward(g, first, (1,), 0.5) == 0.0       # a -(a r c)-> c states it
-    assert tr.stated_end_reward(g, first, (4, 3), 0.5) == 0.5     # a -(a s x)-> x -(c s x)-> c
-    assert tr.stated_end_reward(g, first, (4, 3), 0.0) == 0.0     # off by default
-    for reward in (0.0, 0.5):
-        out = tr.rollout(P, pol.TorchOps(), g, np.arange(len(g.relation_names)), [first], 200,
-                         2, 0.0, torch.Generator().manual_seed(0), np.random.default_rng(0),
-                         stated_reward=reward)
-        correct, final = out[2], out[4]
-        on_c = correct[final == e("c")]
-        assert len(on_c) and set(on_c.tolist()) <= {0.0, reward}
-        assert np.all(correct[np.isin(final, [e("b"), e("x")])] == 1.0)
-
-
 def test_all_then_one_curriculum_switches_episodes():
     """"all-then-one" trains on all-answers episodes for ``switch_epochs`` epochs, then on one
     episode per stated answer; the other modes keep theirs throughout."""

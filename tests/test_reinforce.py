@@ -115,30 +115,3 @@ def test_sentence_dropout_hides_only_the_sentence_view_of_about_p_of_the_questio
         assert h or np.array_equal(out[id(e)], qx[id(e)])
         assert np.array_equal(qx[id(e)], np.arange(1.0, 7.0))
     assert tr._drop_sentence(qx, eps, 4, 0.0, rng) is qx
-
-
-def test_expected_final_reward_sums_every_last_action(tiny_graph):
-    """``rollout(extra=...)`` reports, for the last hop, sum_a pi(a) R(end of a) over every
-    action (no sampling): checked against the probabilities of one forward pass by hand."""
-    from hopper.env import Walker, candidates, pad_candidates
-
-    g = tiny_graph
-    rng = np.random.default_rng(2)
-    q = rng.standard_normal(16).astype(np.float32)
-    q /= np.linalg.norm(q)
-    a, b = g.entity_index("a"), g.entity_index("b")
-    ep = tr.Episode(q, q, [a], frozenset([b]))
-    init = pol.init_params(16, 8, len(g.relation_names), 1, seed=4)
-    P = {k: torch.tensor(v) for k, v in init.items()}
-    relmap = np.arange(len(g.relation_names))
-    extra: dict = {}
-    tr.rollout(P, pol.TorchOps(), g, relmap, [ep], 4, 1, 0.0, torch.Generator().manual_seed(0),
-               rng, extra=extra)
-    c = candidates(g, Walker(a, (), (a,)), q, 0, 1, frozenset([a]))
-    x = pol.question_features(init, q, None)[None]
-    lp, _ = pol.step(init, pol.NumpyOps, g, relmap, x, np.zeros((1, 8), np.float32), np.zeros(1, int),
-                     pad_candidates([c]))
-    p = np.exp(lp[0])
-    want = p[1:1 + len(c.nexts)][c.nexts == b].sum()
-    assert 0 < want < 1
-    assert np.allclose(extra["expected_final"].detach().numpy(), want, atol=1e-5)
