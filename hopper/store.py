@@ -279,10 +279,8 @@ class Store:
         try:
             return first(con.execute("SELECT count(*) FROM main.meta "
                                      "WHERE key = 'schema_version'"))[0] > 0
-        except duckdb.CatalogException:
-            return False  # no table main.meta
-        except duckdb.BinderException:
-            return False  # a table named meta of another shape
+        except (duckdb.CatalogException, duckdb.BinderException):
+            return False  # no table main.meta, or one of another shape
 
     def _ensure_schema(self, con) -> None:
         if self._has_schema(con):

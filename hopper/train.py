@@ -420,8 +420,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
     if not train_eps:
         raise InputError("no training question names an entity of the store with a known answer",
                          field="questions", hint="check the questions match the loaded facts")
-    questions = train_eps  # one per question (the question views and the scorer are fitted on these)
-    all_eps = train_eps
+    questions = train_eps  # one per question (the question views and the scorer are fitted on
+    #                        these; "all-answers" episodes, which a curriculum trains on first)
     if settings.completion_episodes in ("one-answer", "all-then-one"):
         from .env import one_answer_each
 
@@ -458,7 +458,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
             log(f"reward scorer (ComplEx) fitted in {time.monotonic() - t0:.0f} s")
     frozen = set(pol.FIXED) | (set() if settings.entity_embed else {"N_c", "N_z", "N_s"})
     qx = {id(e): pol.question_features(init, e.qstate, e.word_vecs)
-          for e in (train_eps + all_eps if all_eps is not train_eps else train_eps)}
+          for e in (train_eps if train_eps is questions else questions + train_eps)}
     one_eps = train_eps
     P = {k: torch.tensor(v, requires_grad=k not in frozen) for k, v in init.items()}
     opt = torch.optim.Adam([v for k, v in P.items() if k not in frozen], lr=settings.lr)
@@ -493,7 +493,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         if finished:
             break
         if curriculum:
-            train_eps = epoch_episodes(settings, epoch, all_eps, one_eps)
+            train_eps = epoch_episodes(settings, epoch, questions, one_eps)
             n_batches = math.ceil(len(train_eps) / settings.batch_questions)
         order = rng.permutation(len(train_eps))
         shaping = settings.type_reward * max(0.0, 1.0 - epoch / settings.shaping_epochs)
