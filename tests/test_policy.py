@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from hopper import policy as pol
 from hopper.env import Walker, candidates, pad_candidates
@@ -16,7 +15,7 @@ def _batch(graph, qvec):
 
 
 def test_numpy_and_torch_give_the_same_probabilities(tiny_graph):
-    torch = pytest.importorskip("torch")
+    import torch
     rng = np.random.default_rng(0)
     q = rng.standard_normal(16).astype(np.float32)
     q /= np.linalg.norm(q)
@@ -41,7 +40,7 @@ def test_numpy_and_torch_give_the_same_probabilities(tiny_graph):
 
 
 def test_entity_vectors_same_on_numpy_and_torch_and_change_the_scores(tiny_graph):
-    torch = pytest.importorskip("torch")
+    import torch
     rng = np.random.default_rng(1)
     q = rng.standard_normal(16).astype(np.float32)
     q /= np.linalg.norm(q)
@@ -127,7 +126,7 @@ def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
 def test_stated_answers_change_scores_alike_on_numpy_and_torch(tiny_graph):
     """w_known reads which candidates lead to (and whether the walker stands on) an answer a
     visible fact already states; numpy and torch agree, and without stated answers it is unread."""
-    torch = pytest.importorskip("torch")
+    import torch
     rng = np.random.default_rng(2)
     q = rng.standard_normal(16).astype(np.float32)
     q /= np.linalg.norm(q)
@@ -166,12 +165,15 @@ def test_candidates_of_a_batch_are_each_walkers_own(tiny_graph):
     qs /= np.linalg.norm(qs, axis=1, keepdims=True)
     a, b, d = g.entity_index("a"), g.entity_index("b"), g.entity_index("d")
     f_ab = int(np.flatnonzero((g.subj == a) & (g.obj == b))[0])
-    walkers = [Walker(a, (), (a,)), Walker(b, (f_ab,), (a, b)), Walker(d, (), (d,))]
-    owner = [0, 0, 1]
-    linked = [frozenset([a]), frozenset([a]), frozenset([d])]
-    hidden = [frozenset(), frozenset(), frozenset([f_ab])]
+    # walker 2 stands where walker 0 does, but its question hides the fact a -> b
+    walkers = [Walker(a, (), (a,)), Walker(b, (f_ab,), (a, b)), Walker(a, (), (a,)),
+               Walker(d, (), (d,))]
+    owner = [0, 0, 1, 1]
+    linked = [frozenset([a]), frozenset([a]), frozenset([a]), frozenset([d])]
+    hidden = [frozenset(), frozenset(), frozenset([f_ab]), frozenset()]
     for hop in (0, 1):
-        batch = candidates_batch(g, walkers, qs[owner], hop, 3, linked, hidden, [{}, {}, {}], cap=2)
+        batch = candidates_batch(g, walkers, qs[owner], hop, 3, linked, hidden, [{}, {}, {}, {}],
+                                 cap=2)
         for i, w in enumerate(walkers):
             c = candidates(g, w, qs[owner[i]], hop, 3, linked[i], hidden[i], cap=2)
             n = len(c.facts)
@@ -179,8 +181,9 @@ def test_candidates_of_a_batch_are_each_walkers_own(tiny_graph):
             assert (batch["facts"][i, :n] == c.facts).all() and (batch["nexts"][i, :n] == c.nexts).all()
             assert np.allclose(batch["feats"][i, :n], c.feats, atol=1e-6)
             assert np.allclose(batch["stop_feats"][i], c.stop_feats, atol=1e-6)
-            if i > 0:  # fetched (walker 1) or hidden (walker 2): never offered again
+            if i in (1, 2):  # fetched (walker 1) or hidden (walker 2): not offered
                 assert f_ab not in set(c.facts.tolist())
+        assert f_ab in set(batch["facts"][0].tolist())  # walker 0, same place, sees it
 
 
 def test_a_policy_read_before_is_not_read_again():
