@@ -106,7 +106,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Build the demo store from factstores/, train a policy, answer "
                        "a few questions, compare with greedy retrieval and show one audit.")
     s.add_argument("--store", metavar="PATH", default=None,
-                   help="where to build the demo store (default: demo.duckdb)")
+                   help="where to build the demo store (default: $HOPPER_STORE, else ./hopper.duckdb)")
     s.add_argument("--quick", action="store_true", help="a short training run (about a minute)")
     return p
 
@@ -259,7 +259,7 @@ def _cmd_audit(args, hp):
 def _cmd_demo(args):
     from .demo import run_demo
 
-    run_demo(args.store or "demo.duckdb", quick=args.quick)
+    run_demo(_store_path(args), quick=args.quick)
 
 
 def main(argv=None) -> int:
