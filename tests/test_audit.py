@@ -7,26 +7,21 @@ about the policy.  One fixture trains a tiny policy anyway, to check that a ``po
 to the same fetch sequence.
 """
 
-import csv
 import html
-import io
 import json
 import os
 import shutil
 import subprocess
 import unicodedata
-from contextlib import redirect_stdout
 from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
 
 import hopper
+from helpers import REPO, run_cli, write_csv
 from hopper import audit
-from hopper.cli import main as cli_main
 from hopper.errors import InputError
-
-REPO = Path(__file__).resolve().parents[1]
 
 MARKUP_TEXT = "The Zolt bracket is made by Hask & \"Dunmore\" <script>alert(1)</script> 'per order'"
 MARKUP_SOURCE = "orders <2024> & co"
@@ -54,11 +49,7 @@ def city_question(part):
 
 
 def write_facts(path: Path, rows=FACTS) -> Path:
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object", "text", "source"])
-        w.writerows(rows)
-    return path
+    return write_csv(path, rows, header=("subject", "relation", "object", "text", "source"))
 
 
 def make_store(folder: Path):
@@ -86,13 +77,6 @@ def policy_hp(tmp_path_factory):
             hidden=16, patience=10, lr=0.01, progress=False)
     h.eval_questions = qs
     return h
-
-
-def run_cli(args) -> tuple[int, str]:
-    out = io.StringIO()
-    with redirect_stdout(out):
-        rc = cli_main(args)
-    return rc, out.getvalue()
 
 
 # -- recording and replay ---------------------------------------------------------------------------
@@ -151,10 +135,10 @@ def test_run_records_everything_the_issue_lists(hp):
 # -- audit --json against ask --json ------------------------------------------------------------------
 def test_audit_json_matches_ask_json(hp):
     store = str(hp.path)
-    rc, out = run_cli(["ask", city_question("Zolt bracket"), "--strategy", "walk", "--json", "--store", store])
+    rc, out, _ = run_cli("ask", city_question("Zolt bracket"), "--strategy", "walk", "--json", "--store", store)
     assert rc == 0
     asked = json.loads(out)
-    rc, out = run_cli(["audit", asked["run_id"], "--json", "--store", store])
+    rc, out, _ = run_cli("audit", asked["run_id"], "--json", "--store", store)
     assert rc == 0
     audited = json.loads(out)
     shared = (set(asked) & set(audited)) - {"fetches"}
@@ -168,7 +152,7 @@ def test_audit_json_matches_ask_json(hp):
         for key in a:
             assert b[key] == a[key], key
     # a unique prefix of at least six characters finds the same run
-    rc, out = run_cli(["audit", asked["run_id"][:8], "--json", "--store", store])
+    rc, out, _ = run_cli("audit", asked["run_id"][:8], "--json", "--store", store)
     assert rc == 0 and json.loads(out)["run_id"] == asked["run_id"]
 
 
@@ -178,8 +162,7 @@ def test_unknown_or_too_short_run_id_is_refused(hp):
     doc = hp.ask(city_question("Tarvel pump"), strategy="walk")
     with pytest.raises(InputError, match="audit --list"):
         audit.read_run(hp.store, doc["run_id"][:4])
-    rc = cli_main(["audit", "nosuchrun", "--store", str(hp.path)])
-    assert rc == 2
+    assert run_cli("audit", "nosuchrun", "--store", hp.path)[0] == 2
 
 
 # -- listing --------------------------------------------------------------------------------------------
@@ -200,7 +183,7 @@ def test_list_newest_first_and_filters(hp):
     for bad in ("2024-13-01", "yesterday", "2024-1-5"):
         with pytest.raises(InputError, match="--since"):
             audit.list_runs(hp.store, since=bad)
-    rc, out = run_cli(["audit", "--list", "--json", "--contains", "Tarvel", "--store", str(hp.path)])
+    rc, out, _ = run_cli("audit", "--list", "--json", "--contains", "Tarvel", "--store", str(hp.path))
     assert rc == 0 and a["run_id"] in {r["run_id"] for r in json.loads(out)}
     text = audit.format_list(runs)
     assert b["run_id"] in text.splitlines()[1]
@@ -339,8 +322,7 @@ def test_write_html_refuses_a_missing_folder(hp, tmp_path):
         audit.write_html(run, tmp_path / "no" / "such" / "page.html")
     with pytest.raises(InputError, match="folder"):
         audit.write_html(run, tmp_path)
-    rc = cli_main(["audit", doc["run_id"], "--html", str(tmp_path / "nope" / "x.html"), "--store", str(hp.path)])
-    assert rc == 2
+    assert run_cli("audit", doc["run_id"], "--html", tmp_path / "nope" / "x.html", "--store", hp.path)[0] == 2
 
 
 @pytest.mark.skipif(shutil.which("chromium") is None, reason="chromium is not installed (apt-get install chromium)")
@@ -377,7 +359,7 @@ def test_counterfactual_names_bridge_fact_necessary(hp):
     text = audit.format_counterfactual(res)
     assert "needed" in text and str(bridge["fact_id"]) in text
     # the CLI prints the same as JSON
-    rc, out = run_cli(["audit", doc["run_id"], "--counterfactual", "--json", "--store", str(hp.path)])
+    rc, out, _ = run_cli("audit", doc["run_id"], "--counterfactual", "--json", "--store", str(hp.path))
     assert rc == 0 and json.loads(out)["facts"] == json.loads(json.dumps(res["facts"]))
 
 

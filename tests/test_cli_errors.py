@@ -14,6 +14,7 @@ import sys
 import duckdb
 import pytest
 
+from helpers import hopper_env, query, run_cli
 from hopper import cli
 from hopper.errors import InputError
 from hopper.questions import MAX_QUESTION, read_questions
@@ -31,14 +32,6 @@ def digest(path) -> str | None:
     if wal.exists():
         h.update(wal.read_bytes())
     return h.hexdigest()
-
-
-def run(capsys, *argv):
-    """Run the CLI in-process; return (status, stdout, stderr)."""
-    capsys.readouterr()
-    status = cli.main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return status, out, err
 
 
 def assert_one_line_error(status, out, err, *fragments):
@@ -68,11 +61,7 @@ def unchanged(store):
 
 
 def fact_count(path) -> int:
-    con = duckdb.connect(str(path), read_only=True)
-    try:
-        return con.execute("SELECT count(*) FROM facts").fetchone()[0]
-    finally:
-        con.close()
+    return query(path, "SELECT count(*) FROM facts")[0][0]
 
 
 # (file name, bytes, fragments the one error line must contain)
@@ -117,71 +106,71 @@ BAD_FACT_FILES = [
 
 
 @pytest.mark.parametrize("name,data,fragments", BAD_FACT_FILES, ids=[c[0] for c in BAD_FACT_FILES])
-def test_bad_fact_file_exits_2_with_one_line_and_store_unchanged(tmp_path, capsys, unchanged,
+def test_bad_fact_file_exits_2_with_one_line_and_store_unchanged(tmp_path, unchanged,
                                                                  name, data, fragments):
     f = tmp_path / name
     f.write_bytes(data)
-    assert_one_line_error(*run(capsys, "load", f, "--store", unchanged), *fragments)
+    assert_one_line_error(*run_cli("load", f, "--store", unchanged), *fragments)
     assert not list(tmp_path.glob("*.rejected.csv"))  # nothing is written unless --skip-invalid
 
 
-def test_bad_file_among_good_ones_loads_nothing(tmp_path, capsys, unchanged):
+def test_bad_file_among_good_ones_loads_nothing(tmp_path, unchanged):
     good = tmp_path / "new.csv"
     good.write_text("subject,relation,object\nNew,r,Thing\n", encoding="utf-8")
     bad = tmp_path / "bad.csv"
     bad.write_text("subject,relation,object\nX,,Y\n", encoding="utf-8")
-    assert_one_line_error(*run(capsys, "load", good, bad, "--store", unchanged), "bad.csv", "line 2")
+    assert_one_line_error(*run_cli("load", good, bad, "--store", unchanged), "bad.csv", "line 2")
     assert fact_count(unchanged) == 3
 
 
-def test_missing_file_and_folder(tmp_path, capsys, unchanged):
-    assert_one_line_error(*run(capsys, "load", tmp_path / "nope.csv", "--store", unchanged),
+def test_missing_file_and_folder(tmp_path, unchanged):
+    assert_one_line_error(*run_cli("load", tmp_path / "nope.csv", "--store", unchanged),
                           "nope.csv", "no such file")
     (tmp_path / "dir.csv").mkdir()
-    assert_one_line_error(*run(capsys, "load", tmp_path / "dir.csv", "--store", unchanged),
+    assert_one_line_error(*run_cli("load", tmp_path / "dir.csv", "--store", unchanged),
                           "dir.csv", "folder")
 
 
 @pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0, reason="root can read any file")
-def test_unreadable_file(tmp_path, capsys, unchanged):
+def test_unreadable_file(tmp_path, unchanged):
     f = tmp_path / "secret.csv"
     f.write_text(GOOD, encoding="utf-8")
     f.chmod(0)
     try:
-        assert_one_line_error(*run(capsys, "load", f, "--store", unchanged), "secret.csv", "cannot be read")
+        assert_one_line_error(*run_cli("load", f, "--store", unchanged), "secret.csv", "cannot be read")
     finally:
         f.chmod(0o600)
 
 
 @pytest.mark.parametrize("content", [b"just some notes\n", b"\x00" * 64, b"x"],
                          ids=["text", "zeros", "tiny"])
-def test_store_that_is_not_duckdb_is_never_overwritten(tmp_path, capsys, content):
+def test_store_that_is_not_duckdb_is_never_overwritten(tmp_path, content):
     target = tmp_path / "notes.duckdb"
     target.write_bytes(content)
     f = tmp_path / "f.csv"
     f.write_text(GOOD, encoding="utf-8")
     for argv in (["load", f], ["info"], ["ask", "Where was Ada born?"]):
-        assert_one_line_error(*run(capsys, *argv, "--store", target), "notes.duckdb")
+        assert_one_line_error(*run_cli(*argv, "--store", target), "notes.duckdb")
         assert target.read_bytes() == content
     assert sorted(p.name for p in tmp_path.iterdir()) == ["f.csv", "notes.duckdb"]
 
 
-def test_empty_store_file_is_refused(tmp_path, capsys):
+def test_empty_store_file_is_refused(tmp_path):
     target = tmp_path / "empty.duckdb"
     target.write_bytes(b"")
     f = tmp_path / "f.csv"
     f.write_text(GOOD, encoding="utf-8")
-    assert_one_line_error(*run(capsys, "load", f, "--store", target), "empty.duckdb")
+    assert_one_line_error(*run_cli("load", f, "--store", target), "empty.duckdb")
     assert target.read_bytes() == b""
 
 
-def test_store_that_is_a_folder(tmp_path, capsys):
+def test_store_that_is_a_folder(tmp_path):
     f = tmp_path / "f.csv"
     f.write_text(GOOD, encoding="utf-8")
-    assert_one_line_error(*run(capsys, "load", f, "--store", tmp_path), "folder")
+    assert_one_line_error(*run_cli("load", f, "--store", tmp_path), "folder")
 
 
-def test_duckdb_file_that_is_not_a_hopper_store_is_left_unchanged(tmp_path, capsys):
+def test_duckdb_file_that_is_not_a_hopper_store_is_left_unchanged(tmp_path):
     other = tmp_path / "other.duckdb"
     con = duckdb.connect(str(other))
     con.execute("CREATE TABLE accounts (id INTEGER, owner VARCHAR)")
@@ -191,31 +180,31 @@ def test_duckdb_file_that_is_not_a_hopper_store_is_left_unchanged(tmp_path, caps
     f = tmp_path / "f.csv"
     f.write_text(GOOD, encoding="utf-8")
     for argv in (["load", f], ["info"]):
-        assert_one_line_error(*run(capsys, *argv, "--store", other), "other.duckdb", "not a hopper store")
+        assert_one_line_error(*run_cli(*argv, "--store", other), "other.duckdb", "not a hopper store")
         assert digest(other) == before
 
 
-def test_model_mismatch_is_refused_and_store_unchanged(tmp_path, capsys):
+def test_model_mismatch_is_refused_and_store_unchanged(tmp_path):
     path = tmp_path / "s.duckdb"
     f = tmp_path / "f.csv"
     f.write_text(GOOD, encoding="utf-8")
-    assert run(capsys, "load", f, "--store", path)[0] == 0
+    assert run_cli("load", f, "--store", path)[0] == 0
     con = duckdb.connect(str(path))
     con.execute("UPDATE meta SET value = ? WHERE key = 'model_sha256'", ["0" * 64])
     con.close()
     before = digest(path)
     more = tmp_path / "more.csv"
     more.write_text("subject,relation,object\nNew,r,Thing\n", encoding="utf-8")
-    status, out, err = run(capsys, "load", more, "--store", path)
+    status, out, err = run_cli("load", more, "--store", path)
     assert_one_line_error(status, out, err, "s.duckdb", "000000000000", "cannot be mixed")
     assert digest(path) == before
     assert fact_count(path) == 3
 
 
-def test_skip_invalid_via_cli_reports_the_rejected_file(tmp_path, capsys):
+def test_skip_invalid_via_cli_reports_the_rejected_file(tmp_path):
     f = tmp_path / "f.csv"
     f.write_text("subject,relation,object\nA,r,B\n, r ,C\nD,r,E\n", encoding="utf-8")
-    status, out, err = run(capsys, "load", f, "--store", tmp_path / "s.duckdb", "--skip-invalid", "--json")
+    status, out, err = run_cli("load", f, "--store", tmp_path / "s.duckdb", "--skip-invalid", "--json")
     assert status == 0 and err == ""
     report = json.loads(out)
     assert (report["facts_added"], report["rejected"]) == (2, 1)
@@ -230,7 +219,7 @@ def test_console_script_reports_bad_input_in_one_line(tmp_path):
     exe = pathlib.Path(sys.executable).with_name("hopper")
     proc = subprocess.run([str(exe), "load", str(f), "--store", str(tmp_path / "s.duckdb")],
                           capture_output=True, text=True, timeout=120,
-                          env={**os.environ, "HF_HUB_OFFLINE": "1"})
+                          env=hopper_env())
     assert proc.returncode == 2 and proc.stdout == ""
     assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr
     assert "f.csv, line 4, field 'relation'" in proc.stderr
@@ -301,20 +290,20 @@ def test_question_file_with_byte_order_mark_and_crlf_reads(tmp_path):
     (["load"], ["FILE"]),
     (["frobnicate"], ["frobnicate"]),
 ], ids=lambda v: " ".join(v) if isinstance(v, list) and len(" ".join(v)) < 40 else None)
-def test_usage_errors_exit_2_with_one_line(capsys, unchanged, argv, fragments):
-    assert_one_line_error(*run(capsys, *argv, "--store", unchanged)
-                          if argv[0] != "frobnicate" else run(capsys, *argv), *fragments)
+def test_usage_errors_exit_2_with_one_line(unchanged, argv, fragments):
+    assert_one_line_error(*run_cli(*argv, "--store", unchanged)
+                          if argv[0] != "frobnicate" else run_cli(*argv), *fragments)
 
 
-def test_train_with_malformed_question_file_names_the_line(tmp_path, capsys, unchanged):
+def test_train_with_malformed_question_file_names_the_line(tmp_path, unchanged):
     q = tmp_path / "q.jsonl"
     q.write_text('{"question": "Where was Ada born?", "answer": "London"}\n{oops}\n', encoding="utf-8")
-    assert_one_line_error(*run(capsys, "train", "--questions", q, "--store", unchanged),
+    assert_one_line_error(*run_cli("train", "--questions", q, "--store", unchanged),
                           "q.jsonl", "line 2", "malformed JSON")
 
 
-def test_ask_on_missing_store_is_one_line(tmp_path, capsys):
-    assert_one_line_error(*run(capsys, "ask", "Where?", "--store", tmp_path / "none.duckdb"),
+def test_ask_on_missing_store_is_one_line(tmp_path):
+    assert_one_line_error(*run_cli("ask", "Where?", "--store", tmp_path / "none.duckdb"),
                           "none.duckdb", "no hopper store")
     assert not (tmp_path / "none.duckdb").exists()
 
@@ -326,11 +315,11 @@ CLI_BAD_QUESTIONS = [(cmd, *case) for cmd in ("train", "ask", "eval") for case i
 
 @pytest.mark.parametrize("command,label,text,line,field,fragment", CLI_BAD_QUESTIONS,
                          ids=[f"{c[0]}-{c[1]}" for c in CLI_BAD_QUESTIONS])
-def test_bad_question_file_through_the_cli_exits_2_and_changes_nothing(tmp_path, capsys, unchanged, command,
+def test_bad_question_file_through_the_cli_exits_2_and_changes_nothing(tmp_path, unchanged, command,
                                                                        label, text, line, field, fragment):
     f = tmp_path / "q.jsonl"
     f.write_text(text, encoding="utf-8")
     where = [f"line {line}"] if line else []
     where += [f"field '{field}'"] if field else []
-    assert_one_line_error(*run(capsys, command, "--questions", f, "--store", unchanged),
+    assert_one_line_error(*run_cli(command, "--questions", f, "--store", unchanged),
                           "q.jsonl", fragment, *where)

@@ -7,18 +7,16 @@ only when that fetch fails because there is no network.
 """
 from __future__ import annotations
 
-import csv
 import importlib.util
 import socket
 import time
 from collections import Counter, defaultdict
-from pathlib import Path
 
 import pytest
 
+from helpers import REPO, write_csv
 from hopper.metrics import filtered_rank, known_answers, ranking_metrics
 
-ROOT = Path(__file__).resolve().parent.parent
 # Four small UMLS relations (203 train facts, 31 entities) whose answers follow from other
 # facts by short paths (precedes and degree_of are stated both ways; co-occurs_with and
 # occurs_in chain through each other), and where ranking by relation frequency is weak.
@@ -27,7 +25,7 @@ RELATIONS = ("precedes", "degree_of", "co-occurs_with", "occurs_in")
 
 def _bench():
     spec = importlib.util.spec_from_file_location("bench_completion",
-                                                  ROOT / "scripts" / "bench_completion.py")
+                                                  REPO / "scripts" / "bench_completion.py")
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod
@@ -82,13 +80,8 @@ def test_short_training_beats_relation_frequency(umls, tmp_path):
         return [t for t in umls[split] if t[1] in RELATIONS and t[0] in inside and t[2] in inside]
 
     valid, test = part("valid"), part("test")
-    facts = tmp_path / "facts.csv"
-    with open(facts, "w", newline="", encoding="utf-8") as f:
-        w = csv.writer(f)
-        w.writerow(["subject", "relation", "object"])
-        w.writerows(train)
     hp = hopper.open_store(tmp_path / "umls.duckdb")
-    hp.load([facts], progress=False)
+    hp.load([write_csv(tmp_path / "facts.csv", train)], progress=False)
 
     # Early stopping on the valid split; its questions list the answers already known from
     # train too, so the walk is rewarded for any right answer with the facts stating them hidden
@@ -150,7 +143,7 @@ def test_one_answer_each_hides_one_stated_answer_per_episode():
     import numpy as np
     import torch
 
-    from conftest import make_graph
+    from helpers import make_graph
     from hopper import policy as pol
     from hopper import train as tr
     from hopper.env import Episode, one_answer_each, stated_answers

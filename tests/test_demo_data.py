@@ -4,46 +4,39 @@ from __future__ import annotations
 
 import csv
 import filecmp
-import json
 import random
 import re
 import subprocess
 import sys
 from collections import Counter, defaultdict
-from pathlib import Path
 
 import duckdb
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
-STORE = ROOT / "factstores" / "supply"
-SCRIPT = ROOT / "scripts" / "make_demo_store.py"
+from helpers import DEMO, REPO, demo_questions
+
+SCRIPT = REPO / "scripts" / "make_demo_store.py"
 FILES = ["facts.csv", "questions_train.jsonl", "questions_valid.jsonl",
          "questions_test.jsonl", "README.md"]
 
 
-def load(split: str) -> list[dict]:
-    with open(STORE / f"questions_{split}.jsonl", encoding="utf-8") as f:
-        return [json.loads(line) for line in f]
-
-
 @pytest.fixture(scope="module")
 def splits() -> dict[str, list[dict]]:
-    return {s: load(s) for s in ("train", "valid", "test")}
+    return {s: demo_questions(s) for s in ("train", "valid", "test")}
 
 
 @pytest.fixture(scope="module")
 def con():
     c = duckdb.connect()
     c.execute("CREATE TABLE facts AS SELECT * FROM read_csv(?, header=true, all_varchar=true)",
-              [str(STORE / "facts.csv")])
+              [str(DEMO / "facts.csv")])
     yield c
     c.close()
 
 
 def test_facts_file_shape(con):
-    assert (STORE / "facts.csv").stat().st_size < 2_000_000
-    with open(STORE / "facts.csv", encoding="utf-8", newline="") as f:
+    assert (DEMO / "facts.csv").stat().st_size < 2_000_000
+    with open(DEMO / "facts.csv", encoding="utf-8", newline="") as f:
         header = next(csv.reader(f))
     assert header == ["id", "subject", "relation", "object", "text", "source"]
     n, n_ids, n_rel = con.execute(
@@ -171,6 +164,6 @@ def test_new_wordings_use_words_no_training_question_uses(splits):
 def test_regeneration_is_byte_identical(tmp_path):
     # runtime: about 1 s (whole generator, default seed, into a tmp dir)
     subprocess.run([sys.executable, str(SCRIPT), "--out", str(tmp_path)],
-                   check=True, cwd=ROOT, capture_output=True, timeout=120)
+                   check=True, cwd=REPO, capture_output=True, timeout=120)
     for name in FILES:
-        assert filecmp.cmp(STORE / name, tmp_path / name, shallow=False), name
+        assert filecmp.cmp(DEMO / name, tmp_path / name, shallow=False), name

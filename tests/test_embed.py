@@ -3,16 +3,14 @@
 import hashlib
 import json
 import os
-import pathlib
 import subprocess
 import sys
 
 import numpy as np
 import pytest
 
+from helpers import REPO
 from hopper import embed
-
-REPO = pathlib.Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module")

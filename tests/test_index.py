@@ -9,7 +9,7 @@ import sys
 import numpy as np
 import pytest
 
-from conftest import ROOT, demo_questions
+from helpers import REPO, demo_questions
 from hopper.env import Graph
 from hopper.errors import InputError
 from hopper.index import IVFIndex, exact_search, min_facts
@@ -173,7 +173,7 @@ def test_ask_reads_the_index_without_sklearn_or_torch(indexed_copy):
         "bad = [m for m in ('sklearn', 'torch', 'sentence_transformers') if m in sys.modules]\n"
         "assert not bad, bad\n"
         "print(doc['answer'])\n")
-    env = dict(os.environ, PYTHONPATH=ROOT)
+    env = dict(os.environ, PYTHONPATH=str(REPO))
     env.pop("HOPPER_IVF_MIN_FACTS", None)
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
     assert out.returncode == 0, out.stderr

@@ -17,40 +17,16 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from helpers import query, write_csv, write_jsonl
 from hopper.api import Hopper
 from hopper.errors import InputError
 from hopper.load import MAX_TEXT, stage_files
 from hopper.questions import make_question, read_questions
 
 
-def write_csv(path, rows, header=("subject", "relation", "object"), delimiter=","):
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh, delimiter=delimiter, lineterminator="\n")
-        w.writerow(header)
-        w.writerows(rows)
-    return path
-
-
-def write_jsonl(path, objs):
-    path.write_text("".join(json.dumps(o, ensure_ascii=False) + "\n" for o in objs), encoding="utf-8")
-    return path
-
-
 def facts(store_path):
-    con = duckdb.connect(str(store_path), read_only=True)
-    try:
-        return con.execute("SELECT subject, relation, object, text, source, source_id "
-                           "FROM facts ORDER BY fact_id").fetchall()
-    finally:
-        con.close()
-
-
-def query(store_path, sql, params=()):
-    con = duckdb.connect(str(store_path), read_only=True)
-    try:
-        return con.execute(sql, list(params)).fetchall()
-    finally:
-        con.close()
+    return query(store_path, "SELECT subject, relation, object, text, source, source_id "
+                             "FROM facts ORDER BY fact_id")
 
 
 # -- each format ---------------------------------------------------------------------------

@@ -1,24 +1,20 @@
 """Repeatability: the same seed and inputs give the same policy and the same answers, and evaluation
-compares strategies on common random numbers.  Invented facts (see test_train_resume.py).
+compares strategies on common random numbers.  Invented facts (``helpers.make_tiny_store``).
 """
 from __future__ import annotations
 
 import ast
 import json
 import random
-from pathlib import Path
-
 import numpy as np
 import pytest
 
-from test_train_resume import TINY, make_store, params, same_params
-
-REPO = Path(__file__).resolve().parents[1]
+from helpers import REPO, TINY, make_tiny_store, policy_params, same_params
 
 
 @pytest.fixture(scope="module")
 def tiny(tmp_path_factory):
-    return make_store(tmp_path_factory.mktemp("repeat"))
+    return make_tiny_store(tmp_path_factory.mktemp("repeat"))
 
 
 def answers(hp, questions) -> list:
@@ -36,9 +32,9 @@ def test_same_seed_same_policy_and_answers_other_seed_differs(tiny):
     b = hp.train(questions, seed=11, epochs=1, **TINY)
     ans_b = answers(hp, questions)
     c = hp.train(questions, seed=12, epochs=1, **TINY)
-    assert same_params(params(hp, a["version"]), params(hp, b["version"]))
+    assert same_params(policy_params(hp, a["version"]), policy_params(hp, b["version"]))
     assert ans_a == ans_b
-    assert not same_params(params(hp, a["version"]), params(hp, c["version"]))  # the seed matters
+    assert not same_params(policy_params(hp, a["version"]), policy_params(hp, c["version"]))  # the seed matters
 
 
 def test_evaluation_uses_common_random_numbers(tiny):

@@ -1,13 +1,12 @@
 """An interrupted load leaves the store as it was and its re-run embeds only what is missing."""
 from __future__ import annotations
 
-import csv
-
 import duckdb
 import numpy as np
 import pytest
 
 import hopper.load as load_mod
+from helpers import write_csv
 from hopper import embed
 from hopper.api import Hopper
 from hopper.store import Store
@@ -16,12 +15,7 @@ from hopper.pending import PendingVectors, text_key
 
 def write_facts(path, n):
     """Invented facts: part P-i is made by maker M-(i mod 7)."""
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["subject", "relation", "object"])
-        for i in range(n):
-            w.writerow([f"P-{i:04d}", "made by", f"Maker {i % 7}"])
-    return path
+    return write_csv(path, [(f"P-{i:04d}", "made by", f"Maker {i % 7}") for i in range(n)])
 
 
 class CountingEncoder:

@@ -4,19 +4,14 @@ side files stay in the folders the user named.  All facts here are invented.
 from __future__ import annotations
 
 import ast
-import csv
-import io
 import json
-from contextlib import redirect_stdout
 from pathlib import Path
 
 import duckdb
 import pytest
 
 import hopper
-from hopper.cli import main as cli_main
-
-REPO = Path(__file__).resolve().parents[1]
+from helpers import REPO, run_cli, write_csv, write_jsonl
 
 
 # -- no pickle ---------------------------------------------------------------------------------
@@ -68,25 +63,14 @@ SQLISH = {"Robert'); DROP TABLE facts;--": "O'Brien & Sons; DELETE FROM runs",
           "part ?; $1 %s {0}": "'); UPDATE policies SET active = true; --"}
 
 
-def run_cli(*argv) -> tuple[int, str]:
-    out = io.StringIO()
-    with redirect_stdout(out):
-        rc = cli_main([str(a) for a in argv])
-    return rc, out.getvalue()
-
-
 def test_sql_looking_facts_and_questions_are_answered_and_audited_verbatim(tmp_path):
-    facts = tmp_path / "facts.csv"
-    with open(facts, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object"])
-        for part, maker in SQLISH.items():
-            w.writerow([part, "made by", maker])  # the only fact touching either name
+    # each the only fact touching either name
+    facts = write_csv(tmp_path / "facts.csv", [(part, "made by", maker) for part, maker in SQLISH.items()])
     store = tmp_path / "s.duckdb"
     assert run_cli("load", facts, "--store", store)[0] == 0
     ids = []
     for part, maker in SQLISH.items():
-        rc, out = run_cli("ask", "--subject", part, "--relation", "made by", "--strategy", "walk",
+        rc, out, _ = run_cli("ask", "--subject", part, "--relation", "made by", "--strategy", "walk",
                           "--json", "--store", store)
         doc = json.loads(out)
         assert rc == 0 and doc["subject"] == part and doc["start_entities"] == [part]
@@ -95,11 +79,11 @@ def test_sql_looking_facts_and_questions_are_answered_and_audited_verbatim(tmp_p
         ids.append(doc["run_id"])
     # a question in words with the same text is recorded verbatim and found by --contains
     q = "Who makes Robert'); DROP TABLE facts;-- ?"
-    rc, out = run_cli("ask", q, "--strategy", "walk", "--json", "--store", store)
+    rc, out, _ = run_cli("ask", q, "--strategy", "walk", "--json", "--store", store)
     assert rc == 0 and json.loads(out)["question"] == q
-    rc, out = run_cli("audit", "--list", "--contains", "'); DROP TABLE", "--json", "--store", store)
+    rc, out, _ = run_cli("audit", "--list", "--contains", "'); DROP TABLE", "--json", "--store", store)
     assert [r["question"] for r in json.loads(out)] == [q, "Robert'); DROP TABLE facts;-- made by?"]
-    rc, out = run_cli("audit", ids[0], "--json", "--store", store)
+    rc, out, _ = run_cli("audit", ids[0], "--json", "--store", store)
     assert json.loads(out)["fetches"][0]["subject"] == "Robert'); DROP TABLE facts;--"
     con = duckdb.connect(str(store), read_only=True)
     try:
@@ -126,17 +110,13 @@ def test_side_files_land_beside_what_the_user_named_and_nowhere_else(tmp_path, m
         d.mkdir()
     victim = outside / "victim.txt"
     victim.write_text("keep me", encoding="utf-8")
-    facts = inputs / "naïve ..facts.csv"
-    with open(facts, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object"])
-        w.writerows([("Tarvel pump", "made by", "Ostrel Works"), ("Ostrel Works", "based in", "Quarnby"),
-                     ("Mirren gasket", "made by", "Brannock Tooling"), (" ", "made by", "Nobody"),
-                     ("Brannock Tooling", "based in", "Morrowgate")])
-    questions = inputs / "q.jsonl"
-    questions.write_text("".join(json.dumps(q) + "\n" for q in [
+    facts = write_csv(inputs / "naïve ..facts.csv", [
+        ("Tarvel pump", "made by", "Ostrel Works"), ("Ostrel Works", "based in", "Quarnby"),
+        ("Mirren gasket", "made by", "Brannock Tooling"), (" ", "made by", "Nobody"),
+        ("Brannock Tooling", "based in", "Morrowgate")])
+    questions = write_jsonl(inputs / "q.jsonl", [
         {"question": "Who makes the Tarvel pump?", "answer": "Ostrel Works"},
-        {"question": "Who makes the Mirren gasket?", "answer": "Brannock Tooling"}]), encoding="utf-8")
+        {"question": "Who makes the Mirren gasket?", "answer": "Brannock Tooling"}])
     store = stores / "s.duckdb"
     # links planted where side files will go, pointing outside
     for name in (facts.name + ".rejected.csv",):
@@ -149,8 +129,8 @@ def test_side_files_land_beside_what_the_user_named_and_nowhere_else(tmp_path, m
     monkeypatch.delenv("HOPPER_STORE", raising=False)
 
     def hop(*args):
-        rc, out = run_cli(*args)
-        assert rc == 0
+        rc, out, err = run_cli(*args)
+        assert rc == 0, err
         return out
 
     hop("load", facts, "--skip-invalid", "--store", store)
@@ -183,5 +163,5 @@ def test_html_to_a_folder_that_does_not_exist_or_is_a_folder_is_refused(tmp_path
     hp.load([facts], progress=False)
     run_id = hp.ask("Who makes the Tarvel pump?", strategy="walk")["run_id"]
     before = tree(tmp_path)
-    assert cli_main(["audit", run_id, "--html", str(tmp_path / target), "--store", str(store)]) == 2
+    assert run_cli("audit", run_id, "--html", tmp_path / target, "--store", store)[0] == 2
     assert tree(tmp_path) == before

@@ -13,11 +13,10 @@ from pathlib import Path
 import duckdb
 import pytest
 
+from helpers import REPO, hopper_env
 from hopper import store as store_mod
 from hopper.errors import InputError, StoreBusyError
 from hopper.store import Store
-
-REPO = Path(__file__).resolve().parents[1]
 
 WORKER = textwrap.dedent("""
     import json, sys, time
@@ -48,12 +47,6 @@ WORKER = textwrap.dedent("""
 """)
 
 
-def _env(**extra):
-    env = dict(os.environ, HF_HUB_OFFLINE="1", OPENBLAS_NUM_THREADS="1", **extra)
-    env.pop("HOPPER_STORE", None)
-    return env
-
-
 @pytest.fixture()
 def store(tmp_path):
     st = Store(tmp_path / "s.duckdb")
@@ -72,7 +65,7 @@ def test_many_writers_and_readers_lose_nothing(store):
     secs, writers, readers = 8.0, 4, 4
     procs = [subprocess.Popen([sys.executable, "-c", WORKER, str(store.path), role, str(i), str(secs)],
                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                              env=_env(HOPPER_LOCK_TIMEOUT="30"), cwd=REPO)
+                              env=hopper_env(HOPPER_LOCK_TIMEOUT="30"), cwd=REPO)
              for role, n in (("w", writers), ("r", readers)) for i in range(n)]
     committed, errors, writes, reads = set(), [], 0, 0
     for k, p in enumerate(procs):
@@ -146,7 +139,7 @@ def test_timeout_raises_store_busy(store):
                 "except StoreBusyError as e:\n    print('busy', e); sys.exit(3)\n")
         t0 = time.monotonic()
         proc = subprocess.run([sys.executable, "-c", code, str(store.path)], capture_output=True,
-                              text=True, env=_env(HOPPER_LOCK_TIMEOUT="0.5"), cwd=REPO, timeout=60)
+                              text=True, env=hopper_env(HOPPER_LOCK_TIMEOUT="0.5"), cwd=REPO, timeout=60)
         assert proc.returncode == 3, proc.stderr
         assert "HOPPER_LOCK_TIMEOUT" in proc.stdout
         assert time.monotonic() - t0 < 20
