@@ -6,22 +6,21 @@ itself after every row of the load has been inserted but before COMMIT.  The fac
 """
 from __future__ import annotations
 
-import csv
+import fcntl
 import os
 import signal
 import subprocess
 import sys
-import textwrap
 from pathlib import Path
 
-import duckdb
+import pytest
 
-REPO = Path(__file__).resolve().parents[1]
+from helpers import REPO, catalogue, cli_driver, hopper_env, query, write_csv
 
 # Runs hopper's command line; the write transaction of the load SIGKILLs its own process after
 # the work inside it is done and before COMMIT (what a power cut or the OOM killer can do).
-DIE_BEFORE_COMMIT = textwrap.dedent("""
-    import contextlib, os, signal, sys
+DIE_BEFORE_COMMIT = cli_driver("""
+    import contextlib, os, signal
     from hopper import store
 
     @contextlib.contextmanager
@@ -34,28 +33,31 @@ DIE_BEFORE_COMMIT = textwrap.dedent("""
             os.kill(os.getpid(), signal.SIGKILL)
 
     store.Store.transaction = transaction
-    from hopper.cli import main
-    sys.exit(main(sys.argv[1:]))
 """)
 
+# Runs hopper's command line; the load's write transaction says on stdout that it holds the
+# store's write lock, at the point named by $PAUSE_AT ("begin": before the load's inserts,
+# "commit": after them, before COMMIT), and waits there until its stdin closes.
+PAUSE_IN_WRITE = cli_driver("""
+    import contextlib, os, sys
+    from hopper import store
 
-def _env():
-    env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1", OPENBLAS_NUM_THREADS="1")
-    env.pop("HOPPER_STORE", None)
-    return env
+    real = store.Store.transaction
 
+    def pause(where):
+        if os.environ["PAUSE_AT"] == where:
+            print(f"holding the write lock at {where}", flush=True)
+            sys.stdin.read()
 
-def write_csv(path: Path, rows) -> Path:
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object"])
-        w.writerows(rows)
-    return path
+    @contextlib.contextmanager
+    def transaction(self, timeout=None):
+        with real(self, timeout=timeout) as con:
+            pause("begin")
+            yield con
+            pause("commit")
 
-
-def catalogue(start: int, n: int):
-    rels = ["made by", "stored in", "shipped to"]
-    return [(f"Kessel part {k:05d}", rels[k % 3], f"Harl site {k % 37:02d}") for k in range(start, start + n)]
+    store.Store.transaction = transaction
+""")
 
 
 def load_here(store: Path, csv_path: Path) -> dict:
@@ -66,18 +68,14 @@ def load_here(store: Path, csv_path: Path) -> dict:
 
 
 def counts(store: Path) -> tuple:
-    con = duckdb.connect(str(store), read_only=True)
-    try:
-        return con.execute("SELECT (SELECT count(*) FROM facts), (SELECT count(*) FROM fact_vectors), "
-                           "(SELECT count(*) FROM entities), (SELECT count(*) FROM loads), "
-                           "(SELECT value FROM meta WHERE key = 'facts_version')").fetchall()[0]
-    finally:
-        con.close()
+    return query(store, "SELECT (SELECT count(*) FROM facts), (SELECT count(*) FROM fact_vectors), "
+                        "(SELECT count(*) FROM entities), (SELECT count(*) FROM loads), "
+                        "(SELECT value FROM meta WHERE key = 'facts_version')")[0]
 
 
 def killed_load(store: Path, csv_path: Path) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-c", DIE_BEFORE_COMMIT, "load", str(csv_path),
-                           "--store", str(store)], capture_output=True, text=True, env=_env(),
+                           "--store", str(store)], capture_output=True, text=True, env=hopper_env(),
                           cwd=REPO, timeout=300)
 
 
@@ -108,37 +106,44 @@ def test_first_load_killed_leaves_no_facts_and_a_rerun_finishes(tmp_path):
     assert counts(store)[:2] == (120, 120)
 
 
-def test_load_killed_from_outside_while_it_holds_the_write_lock(tmp_path):
-    """The kill comes from another process 10 ms after the load is seen holding the store's
-    write lock (hopper's flock on ``STORE.lock``): the store keeps the old facts or all of the
-    new ones, and a re-run completes it.  (``scripts/bench_faults --kill-after write`` repeats
-    this with random delays.)"""
-    import fcntl
-    import time
+def write_lock_held(store: Path) -> bool:
+    """Whether a process holds the store's write lock (hopper's flock on ``STORE.lock``),
+    probed without waiting."""
+    fd = os.open(str(store) + ".lock", os.O_RDONLY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return True
+    finally:
+        os.close(fd)  # closing lets go of a shared lock we got
+    return False
 
+
+@pytest.mark.parametrize("pause_at", ["begin", "commit"])
+def test_load_killed_from_outside_while_it_holds_the_write_lock(tmp_path, pause_at):
+    """SIGKILL from another process while the load holds the store's write lock, before its
+    inserts ("begin") or after them and before COMMIT ("commit"): the store keeps the old
+    facts, and a re-run completes it.  The load says when it holds the lock and waits there,
+    so the kill lands inside the write however slow the machine; ``scripts/bench_faults
+    --kill-after write`` repeats the case with random delays."""
     store = tmp_path / "store.duckdb"
     load_here(store, write_csv(tmp_path / "a.csv", catalogue(0, 100)))
+    before = counts(store)
     big = write_csv(tmp_path / "b.csv", catalogue(1000, 300))
-    proc = subprocess.Popen([sys.executable, "-m", "hopper.cli", "load", str(big), "--store", str(store)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=_env(), cwd=REPO)
-    lock = str(store) + ".lock"
-    held = False
-    while proc.poll() is None and not held:
-        fd = os.open(lock, os.O_RDONLY)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-        except BlockingIOError:
-            held = True
-        finally:
-            os.close(fd)
-        if not held:
-            time.sleep(0.002)
-    assert held, "the load finished before it was seen holding the lock"
-    time.sleep(0.01)
-    os.kill(proc.pid, signal.SIGKILL)
-    proc.wait()
-    n = counts(store)[0]
-    assert n in (100, 400), n
-    assert counts(store)[1] == n  # every fact has its vector
-    load_here(store, big)
+    proc = subprocess.Popen([sys.executable, "-c", PAUSE_IN_WRITE, "load", str(big), "--store", str(store)],
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            env=hopper_env(PAUSE_AT=pause_at), cwd=REPO)
+    try:
+        line = proc.stdout.readline()  # blocks until the load is inside its write (or exits)
+        assert line == f"holding the write lock at {pause_at}\n", proc.stderr.read() if not line else line
+        assert write_lock_held(store)
+        os.kill(proc.pid, signal.SIGKILL)
+        assert proc.wait(timeout=60) == -signal.SIGKILL
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert counts(store) == before  # facts, vectors, entities, loads and version as they were
+    assert not write_lock_held(store)  # the kernel let go of the dead process's lock
+    assert load_here(store, big)["facts_added"] == 300
     assert counts(store)[:2] == (400, 400)
