@@ -5,7 +5,6 @@ are based).  Training settings are tiny so each run takes a few seconds.
 """
 from __future__ import annotations
 
-import csv
 import hashlib
 import io
 import json
@@ -20,59 +19,17 @@ import numpy as np
 import pytest
 
 import hopper
-from hopper.cli import main as cli_main
+from helpers import (REPO, TINY, cli_driver, hopper_cmd, hopper_env, make_tiny_store, policy_params,
+                     run_cli, same_params)
 from hopper.errors import InputError
-from hopper.policy import Policy
-
-REPO = Path(__file__).resolve().parents[1]
-PARTS = [f"Kessel part {i:02d}" for i in range(16)]
-MAKERS = ["Ostrel Works", "Brannock Tooling", "Hask Dunmore", "Ardent Forge"]
-CITIES = ["Quarnby", "Morrowgate", "Thessaly Point", "Lunfield"]
-TINY = dict(rollouts=6, batch_questions=8, hidden=16, patience=10, progress=False)
-
-
-def write_inputs(folder: Path) -> tuple[Path, Path]:
-    rows = []
-    for i, p in enumerate(PARTS):
-        rows += [(p, "made by", MAKERS[i % 4]), (p, "stored in", CITIES[(i + 1) % 4])]
-    rows += [(m, "based in", CITIES[i]) for i, m in enumerate(MAKERS)]
-    facts = folder / "facts.csv"
-    with open(facts, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object"])
-        w.writerows(rows)
-    qs = []
-    for i, p in enumerate(PARTS):
-        qs.append({"question": f"Who makes the {p}?", "answer": MAKERS[i % 4]})
-        qs.append({"question": f"In which city is the maker of the {p} based?", "answer": CITIES[i % 4]})
-    questions = folder / "questions.jsonl"
-    questions.write_text("".join(json.dumps(q) + "\n" for q in qs), encoding="utf-8")
-    return facts, questions
-
-
-def make_store(folder: Path):
-    """A store of the 36 invented facts, and the question file."""
-    facts, questions = write_inputs(folder)
-    hp = hopper.open_store(folder / "store.duckdb")
-    hp.load([facts], progress=False)
-    return hp, questions
 
 
 @pytest.fixture(scope="module")
 def tiny(tmp_path_factory):
     """The store with a first policy (v1) already trained."""
-    hp, questions = make_store(tmp_path_factory.mktemp("resume"))
+    hp, questions = make_tiny_store(tmp_path_factory.mktemp("resume"))
     hp.train(questions, seed=0, epochs=1, **TINY)
     return hp, questions
-
-
-def params(hp, version) -> dict:
-    with hp.store.connect() as con:
-        return Policy.read(con, version).params
-
-
-def same_params(a: dict, b: dict) -> bool:
-    return set(a) == set(b) and all(np.array_equal(a[k], b[k]) for k in a)
 
 
 def active_version(hp) -> int:
@@ -129,7 +86,7 @@ def test_resumed_run_ends_with_the_same_policy_as_an_uninterrupted_one(tiny):
     assert same_state(full_state, resumed_state)  # weights and Adam's state after the last epoch
     assert resumed["version"] == full["version"] + 1 and active_version(hp) == resumed["version"]
     assert not hp.store.checkpoint_path.exists()
-    assert same_params(params(hp, full["version"]), params(hp, resumed["version"]))
+    assert same_params(policy_params(hp, full["version"]), policy_params(hp, resumed["version"]))
 
     def curve(s):
         return [{k: v for k, v in c.items() if k != "seconds"} for c in s["curve"]]
@@ -172,22 +129,40 @@ def test_resume_without_restoring_the_generators_would_differ(tiny):
     assert [c["train_reward"] for c in other["curve"][1:]] != [c["train_reward"] for c in full["curve"][1:]]
 
 
-def _env():
-    env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1", OPENBLAS_NUM_THREADS="1")
-    env.pop("HOPPER_STORE", None)
-    return env
+# Runs hopper's command line; the process stops itself (SIGSTOP) right after the checkpoint of
+# epoch $STOP_AFTER_EPOCH is written, so the test acts on a run that is certainly in progress.
+STOP_AFTER_CHECKPOINT = cli_driver("""
+    import os, signal
+    from hopper import store
 
+    real = store.Store.save_checkpoint
 
-def _hopper(*args):
-    return [sys.executable, "-m", "hopper.cli", *map(str, args)]
+    def save_checkpoint(self, arrays, meta):
+        real(self, arrays, meta)
+        if meta.get("epoch") == int(os.environ["STOP_AFTER_EPOCH"]):
+            os.kill(os.getpid(), signal.SIGSTOP)
+
+    store.Store.save_checkpoint = save_checkpoint
+""")
 
 
 def _checkpoint_epoch(path: Path) -> int:
-    try:
-        with np.load(path, allow_pickle=False) as z:
-            return int(json.loads(z["meta"].tobytes())["epoch"])
-    except (OSError, ValueError, KeyError):
-        return 0
+    with np.load(path, allow_pickle=False) as z:
+        return int(json.loads(z["meta"].tobytes())["epoch"])
+
+
+def wait_until_stopped(proc: subprocess.Popen, timeout: float) -> None:
+    """Wait for ``proc`` to stop itself (SIGSTOP); fail if it exits or ``timeout`` s pass."""
+    deadline = time.monotonic() + timeout
+    while True:
+        pid, status = os.waitpid(proc.pid, os.WNOHANG | os.WUNTRACED)
+        if pid and os.WIFSTOPPED(status):
+            return
+        if pid:  # it exited: let Popen know how
+            proc.returncode = os.waitstatus_to_exitcode(status)
+            pytest.fail(f"the process ended (status {proc.returncode}) before stopping")
+        assert time.monotonic() < deadline, f"the process did not stop within {timeout:.0f} s"
+        time.sleep(0.05)
 
 
 def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny):
@@ -197,19 +172,15 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
     store, cp = hp.path, hp.store.checkpoint_path
     args = ["--questions", questions, "--seed", "1", "--epochs", "8", "--store", store]
     log = open(store.parent / "train.log", "w+", encoding="utf-8")
-    proc = subprocess.Popen(_hopper("train", *args), stdout=log, stderr=log, env=_env(), cwd=REPO)
+    proc = subprocess.Popen([sys.executable, "-c", STOP_AFTER_CHECKPOINT, "train", *map(str, args)],
+                            stdout=log, stderr=log, env=hopper_env(STOP_AFTER_EPOCH="1"), cwd=REPO)
     try:
-        deadline = time.monotonic() + 300
-        while _checkpoint_epoch(cp) < 1:
-            assert proc.poll() is None, "training ended before its first checkpoint"
-            assert time.monotonic() < deadline
-            time.sleep(0.005)
-        # freeze the run mid-training (so the overlap below is certain, however fast it is)
-        os.kill(proc.pid, signal.SIGSTOP)
-        assert proc.poll() is None and _checkpoint_epoch(cp) < 8, "training ended before it could be killed half-way"
+        # the run stops itself once epoch 1 is saved: frozen mid-training, however slow the machine
+        wait_until_stopped(proc, timeout=600)
+        assert _checkpoint_epoch(cp) == 1
         # ask while the training run is in progress: the last stored policy answers
-        ask = subprocess.run(_hopper("ask", "Who makes the Kessel part 05?", "--json", "--store", store),
-                             capture_output=True, text=True, env=_env(), cwd=REPO, timeout=120)
+        ask = subprocess.run(hopper_cmd("ask", "Who makes the Kessel part 05?", "--json", "--store", store),
+                             capture_output=True, text=True, env=hopper_env(), cwd=REPO, timeout=120)
         assert ask.returncode == 0, ask.stderr
         assert json.loads(ask.stdout)["policy_version"] == old
         os.kill(proc.pid, signal.SIGKILL)
@@ -221,12 +192,12 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
     assert proc.returncode == -signal.SIGKILL
     info = hp.info()
     assert (info["policy"]["version"], info["policy"]["versions"]) == (old, n_versions)
-    ask = subprocess.run(_hopper("ask", "Who makes the Kessel part 06?", "--json", "--store", store),
-                         capture_output=True, text=True, env=_env(), cwd=REPO, timeout=120)
+    ask = subprocess.run(hopper_cmd("ask", "Who makes the Kessel part 06?", "--json", "--store", store),
+                         capture_output=True, text=True, env=hopper_env(), cwd=REPO, timeout=120)
     assert ask.returncode == 0 and json.loads(ask.stdout)["policy_version"] == old, ask.stderr
 
-    done = subprocess.run(_hopper("train", "--resume", "--json", *args), capture_output=True,
-                          text=True, env=_env(), cwd=REPO, timeout=300)
+    done = subprocess.run(hopper_cmd("train", "--resume", "--json", *args), capture_output=True,
+                          text=True, env=hopper_env(), cwd=REPO, timeout=600)
     assert done.returncode == 0, done.stderr
     resumed = json.loads(done.stdout)
     assert resumed["resumed"] is True and resumed["version"] == n_versions + 1
@@ -234,22 +205,13 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
     # the same settings in one uninterrupted run (in this process) give the same policy, and
     # the same training rewards epoch by epoch (those depend on every sampled walk)
     full = hp.train(questions, seed=1, epochs=8)
-    assert same_params(params(hp, n_versions + 1), params(hp, full["version"]))
+    assert same_params(policy_params(hp, n_versions + 1), policy_params(hp, full["version"]))
     assert [c["train_reward"] for c in resumed["curve"]] == [c["train_reward"] for c in full["curve"]]
     assert len(full["curve"]) == 8
 
 
 def _digest(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def run_cli(*argv) -> tuple[int, str, str]:
-    from contextlib import redirect_stderr, redirect_stdout
-
-    out, err = io.StringIO(), io.StringIO()
-    with redirect_stdout(out), redirect_stderr(err):
-        rc = cli_main([str(a) for a in argv])
-    return rc, out.getvalue(), err.getvalue()
 
 
 def test_resume_refusals_are_one_line_and_change_nothing(tiny, tmp_path):
@@ -263,7 +225,9 @@ def test_resume_refusals_are_one_line_and_change_nothing(tiny, tmp_path):
     hp.store.save_checkpoint({"param.W_q": np.zeros((2, 2), np.float32)},
                              {"run": "x", "fingerprint": {"settings": {"seed": 5}}})
     rc, out, err = run_cli("train", "--resume", "--questions", questions, "--seed", "0", "--store", store)
-    assert rc == 2 and err.count("\n") == 1 and "field 'seed'" in err and "5" in err, err
+    assert (rc, out) == (2, ""), err
+    assert err == (f"hopper: {cp}, field 'seed': the checkpoint was made with 5, this run asks 0 "
+                   "(resume with the settings of the interrupted run, or train without --resume)\n")
     # a damaged checkpoint, and one holding a pickled object (never unpickled)
     for data in (b"PK\x03\x04 not really a zip", None):
         if data is None:
