@@ -2,24 +2,23 @@
 
 They load, train a (tiny) policy, answer from the command line and audit: the same text comes
 back in JSON, escaped exactly once in HTML, and aligned by display width in the terminal.
-Display widths follow Unicode Standard Annex #11 (East Asian Width) with combining marks taking
-no column; normal forms follow Unicode Standard Annex #15.  All names are invented.
+Display widths are measured here independently of hopper's own ``audit.text_width``: Unicode
+Standard Annex #11 (East Asian Width) through the standard library's ``unicodedata`` tables, with
+combining marks taking no column; normal forms follow Unicode Standard Annex #15.  All names are
+invented.
 """
 from __future__ import annotations
 
-import csv
-import io
 import json
 import unicodedata
-from contextlib import redirect_stdout
 from html.parser import HTMLParser
 
 import duckdb
 import pytest
 
 import hopper
+from helpers import run_cli, write_csv, write_jsonl
 from hopper import audit
-from hopper.cli import main as cli_main
 
 # part -> (maker, city where the maker is based, depot); every script once, some mixed
 PARTS = {
@@ -42,33 +41,48 @@ def nfc(text: str) -> str:
     return unicodedata.normalize("NFC", text)
 
 
-def run_cli(*argv) -> tuple[int, str]:
-    out = io.StringIO()
-    with redirect_stdout(out):
-        rc = cli_main([str(a) for a in argv])
-    return rc, out.getvalue()
+def display_width(text: str) -> int:
+    """Terminal columns of ``text`` by Unicode Standard Annex #11 (East Asian Width): a character
+    whose East_Asian_Width is W (wide) or F (fullwidth) takes two columns; a combining mark
+    (non-zero canonical combining class, or general category Mn or Me) takes none; anything
+    else one.  Read from the standard library's ``unicodedata`` tables, not from hopper."""
+    cols = 0
+    for ch in text:
+        if unicodedata.combining(ch) or unicodedata.category(ch) in ("Mn", "Me"):
+            continue
+        cols += 2 if unicodedata.east_asian_width(ch) in ("W", "F") else 1
+    return cols
+
+
+def test_the_width_oracle_on_hand_worked_strings():
+    """Columns counted by hand from the rules above, not by any program (the emoji's wide
+    class from memory: emoji presentation characters became W in Unicode 9.0)."""
+    assert display_width("泵 甲型-12") == 10       # 3 ideographs x 2 + space, hyphen, 2 digits
+    assert display_width("Ame\u0301lie") == 6     # the combining acute takes no column
+    assert display_width("🚀 Rocket") == 9         # the emoji is East Asian Wide (Unicode 9.0 on)
+    assert display_width("Насос Вега-3") == 12     # Cyrillic: one column each
+    assert display_width("ＡＢ") == 4               # fullwidth Latin letters
+
+
+def test_hoppers_widths_agree_with_the_oracle():
+    for text in [*PARTS, *(x for v in PARTS.values() for x in v), *WHO.values(), "Ame\u0301lie", "ＡＢ"]:
+        assert audit.text_width(text) == display_width(text), text
 
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory):
     folder = tmp_path_factory.mktemp("unicode")
-    path = folder / "facts.csv"
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["subject", "relation", "object", "text", "source"])
-        for part, (maker, city, depot) in PARTS.items():
-            w.writerow([part, "made by", maker, f"{part} ✓ is made by {maker} — «{maker}»", f"реестр 📄 {part}"])
-            w.writerow([maker, "based in", city, "", ""])
-            w.writerow([part, "stored in", depot, "", ""])
-    questions = folder / "questions.jsonl"
-    with open(questions, "w", encoding="utf-8") as fh:
-        for _ in range(3):
-            for part, (maker, _, _) in PARTS.items():
-                fh.write(json.dumps({"question": WHO[part].format(part), "answer": maker},
-                                    ensure_ascii=False) + "\n")
+    rows = []
+    for part, (maker, city, depot) in PARTS.items():
+        rows += [(part, "made by", maker, f"{part} ✓ is made by {maker} — «{maker}»", f"реестр 📄 {part}"),
+                 (maker, "based in", city, "", ""), (part, "stored in", depot, "", "")]
+    path = write_csv(folder / "facts.csv", rows, header=("subject", "relation", "object", "text", "source"))
+    questions = write_jsonl(folder / "questions.jsonl",
+                            [{"question": WHO[part].format(part), "answer": maker}
+                             for _ in range(3) for part, (maker, _, _) in PARTS.items()])
     store = folder / "store.duckdb"
     assert run_cli("load", path, "--store", store)[0] == 0
-    rc, out = run_cli("train", "--questions", questions, "--valid", questions, "--epochs", "6",
+    rc, out, _ = run_cli("train", "--questions", questions, "--valid", questions, "--epochs", "6",
                       "--max-hops", "2", "--json", "--store", store)
     assert rc == 0
     return store, json.loads(out)
@@ -101,7 +115,7 @@ def test_questions_in_every_script_are_answered_from_the_command_line(store):
     assert summary["epochs"] >= 1 and summary["version"] == 1
     for strategy in ("policy", "walk"):
         for part, (maker, _, _) in PARTS.items():
-            rc, out = run_cli("ask", WHO[part].format(part), "--strategy", strategy, "--json",
+            rc, out, _ = run_cli("ask", WHO[part].format(part), "--strategy", strategy, "--json",
                               "--store", path)
             assert rc == 0
             doc = json.loads(out)
@@ -128,7 +142,7 @@ def test_audit_shows_the_same_text_in_json_html_and_an_aligned_terminal_table(st
         ids[part] = hp.ask(WHO[part].format(part))["run_id"]
     for part, (maker, _, _) in PARTS.items():
         rid = ids[part]
-        rc, out = run_cli("audit", rid, "--json", "--store", path)
+        rc, out, _ = run_cli("audit", rid, "--json", "--store", path)
         assert rc == 0
         run = json.loads(out)
         assert run["answer"] == nfc(maker)
@@ -144,7 +158,7 @@ def test_audit_shows_the_same_text_in_json_html_and_an_aligned_terminal_table(st
         seen = "".join(p.chunks)
         assert text in seen and nfc(maker) in seen and nfc(f"реестр 📄 {part}") in seen
         # terminal: the step table's columns line up by display width
-        rc, out = run_cli("audit", rid, "--store", path)
+        rc, out, _ = run_cli("audit", rid, "--store", path)
         assert rc == 0 and text in out
         lines = out.splitlines()
         head = next(i for i, line in enumerate(lines) if line.lstrip().startswith("hop"))
@@ -152,11 +166,11 @@ def test_audit_shows_the_same_text_in_json_html_and_an_aligned_terminal_table(st
         assert len(rows) == 1 + len(run["fetches"])
         cells = ["source"] + [f.get("source") or "-" for f in run["fetches"]]  # the last column
         assert all(r.endswith(c) for r, c in zip(rows, cells)), rows
-        starts = {audit.text_width(r) - audit.text_width(c) for r, c in zip(rows, cells)}
+        starts = {display_width(r) - display_width(c) for r, c in zip(rows, cells)}
         assert len(starts) == 1, rows
     # the list view lines up too, whatever the scripts in the answers
-    rc, out = run_cli("audit", "--list", "--store", path)
+    rc, out, _ = run_cli("audit", "--list", "--store", path)
     lines = out.splitlines()
-    cols = {audit.text_width(line[: line.index(" policy ")]) for line in lines[1:] if " policy " in line}
+    cols = {display_width(line[: line.index(" policy ")]) for line in lines[1:] if " policy " in line}
     assert len(lines) > len(PARTS)
     assert len(cols) == 1, lines
