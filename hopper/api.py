@@ -401,8 +401,8 @@ class Hopper:
         from .env import episodes
 
         eps = episodes(graph, qs, self._encode_few)
-        return self._report(graph, policy, strategy, self._solve_many(graph, policy, strategy, qs, eps),
-                            top, record)
+        return self._report(graph, policy, strategy,
+                            self._solve_many(graph, policy, strategy, qs, eps, top=top), top, record)
 
     def rerun(self, question: str, *, subject: str | None = None, relation: str | None = None,
               strategy: str = "policy", policy_version: int | None = None,
@@ -425,14 +425,23 @@ class Hopper:
         ep = episodes(graph, [q], self._encode_few)[0]
         ep.hidden = frozenset(r for r in (graph.fact_row(f) for f in hidden_fact_ids) if r is not None)
         t0 = time.perf_counter()
-        out = self._solve(graph, policy, strategy, q, ep)
+        out = self._solve(graph, policy, strategy, q, ep, top=top)
         return self._report(graph, policy, strategy, [(q, out, (time.perf_counter() - t0) * 1000)],
                             top, record=False)[0]
 
-    def _solve_many(self, graph, policy, strategy, qs, eps) -> list:
+    @staticmethod
+    def _beam(policy, top: int) -> int:
+        """The beam width for an answer listing ``top`` ranked answers: the policy's own (16
+        unless trained otherwise), widened to ``top``.  The beams are what ``ranked`` can
+        list, so a narrower beam would cut a long ``--top`` short in a store with far more
+        entities (16 beams reach about 36-64 answers on the demo store, 100 beams 120-263)."""
+        return max(int(policy.settings.get("beam", 16)), int(top))
+
+    def _solve_many(self, graph, policy, strategy, qs, eps, top: int = 10) -> list:
         """[(question, outcome, ms)] for many questions.  The policy searches them together
         (``search.beam_search_many``: one batch per hop for all questions; each question's
-        ms is then its share of the whole); the baselines one by one."""
+        ms is then its share of the whole), with the beam widened to ``top``; the baselines
+        one by one."""
         if strategy != "policy":
             results = []
             for q, ep in zip(qs, eps):
@@ -443,7 +452,7 @@ class Hopper:
         from .search import beam_search_many
 
         t0 = time.perf_counter()
-        outs = beam_search_many(graph, policy, eps, beam=int(policy.settings.get("beam", 16)))
+        outs = beam_search_many(graph, policy, eps, beam=self._beam(policy, top))
         ms = (time.perf_counter() - t0) * 1000 / max(len(qs), 1)
         for q, ep, out in zip(qs, eps, outs):
             self._settle(policy, q, ep, out)
@@ -459,12 +468,12 @@ class Hopper:
         if q.is_completion and not ep.starts:
             out.reason = f"the subject '{q.subject}' is not an entity of the store"
 
-    def _solve(self, graph, policy, strategy, q: Question, ep):
+    def _solve(self, graph, policy, strategy, q: Question, ep, top: int = 10):
         from .search import beam_search, greedy, walk
 
         starts = ep.starts
         if strategy == "policy":
-            out = beam_search(graph, policy, ep, beam=int(policy.settings.get("beam", 16)))
+            out = beam_search(graph, policy, ep, beam=self._beam(policy, top))
             self._settle(policy, q, ep, out)
             return out
         if strategy == "greedy":

@@ -482,9 +482,12 @@ def write_html(run: dict, path) -> str:
 
 # -- what the answer rests on ---------------------------------------------------------------------
 def _rerun(hp, run: dict, hidden=()) -> dict:
+    # The beam is widened to --top (``Hopper._beam``), which runs do not record; the length of
+    # the recorded ranking stands for it: a --top up to the policy's beam left the beam as it
+    # was, and a wider one almost always reaches at least --top answers.
     return hp.rerun(run["question"], subject=run.get("subject"), relation=run.get("relation"),
                     strategy=run["strategy"], policy_version=run.get("policy_version"),
-                    hidden_fact_ids=list(hidden))
+                    hidden_fact_ids=list(hidden), top=max(10, len(run.get("ranked") or [])))
 
 
 def counterfactual(hp, run_id: str) -> dict:

@@ -95,7 +95,7 @@ def beam_search(graph: Graph, policy: pol.Policy, ep: Episode, beam: int = BEAM,
     return beam_search_many(graph, policy, [ep], beam=beam, max_hops=max_hops, relmap=relmap)[0]
 
 
-QUESTIONS_PER_BATCH = 256  # bounds the arrays of one hop (beams x candidates) for long lists
+QUESTIONS_PER_BATCH = 256  # at beam BEAM; bounds the arrays of one hop (beams x candidates)
 
 
 def beam_search_many(graph: Graph, policy: pol.Policy, eps: list, beam: int = BEAM,
@@ -105,10 +105,10 @@ def beam_search_many(graph: Graph, policy: pol.Policy, eps: list, beam: int = BE
     questions costs a few large array operations instead of many small ones.  Each
     question's beams, scores and answers are its own, as if it were searched alone."""
     relmap = policy.relation_map(graph.relation_names) if relmap is None else relmap
+    per_batch = max(1, QUESTIONS_PER_BATCH * BEAM // max(beam, BEAM))  # wider beams, fewer questions
     out: list = []
-    for a in range(0, len(eps), QUESTIONS_PER_BATCH):
-        out += _beam_search_batch(graph, policy, eps[a:a + QUESTIONS_PER_BATCH], beam,
-                                  max_hops, relmap)
+    for a in range(0, len(eps), per_batch):
+        out += _beam_search_batch(graph, policy, eps[a:a + per_batch], beam, max_hops, relmap)
     return out
 
 

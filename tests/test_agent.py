@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from conftest import demo_questions
+from helpers import demo_questions
 
 
 @pytest.fixture(scope="module")
@@ -54,6 +54,30 @@ def test_answer_records_fetches_with_probabilities(trained_demo):
         assert 0.0 <= f["probability"] <= 1.0
         assert {"hop", "fact_id", "subject", "relation", "object", "text"} <= set(f)
     assert hp.audit(doc["run_id"])["fetches"] == doc["fetches"]
+
+
+def test_top_lists_that_many_answers_beyond_what_the_policys_beam_reaches(trained_demo):
+    """``ranked`` holds at least --top answers where the store has that many: the beam is
+    widened to --top for that ask (the policy's own beam of 16 reaches far fewer than 100 of
+    the demo's 2,917 entities); the answer and the facts behind it stay those of the default."""
+    from hopper.env import episodes
+    from hopper.questions import make_question
+    from hopper.search import beam_search
+
+    hp, _ = trained_demo
+    policy = hp._policy()
+    assert int(policy.settings["beam"]) < 100
+    for q in demo_questions("test", per_chain=1)[:6]:
+        usual = hp.ask(q["question"], record=False)
+        ep = episodes(hp._graph, [make_question({"question": q["question"]}, need_answer=False)], hp._encode_few)[0]
+        narrow = beam_search(hp._graph, policy, ep, beam=int(policy.settings["beam"]))
+        assert len(narrow.ranked) < 100  # what the policy's own beam reaches
+        doc = hp.ask(q["question"], top=100, record=False)
+        assert len(doc["ranked"]) == 100
+        assert len({r["answer"] for r in doc["ranked"]}) == 100
+        assert doc["ranked"] == sorted(doc["ranked"], key=lambda r: -r["score"])
+        assert (doc["answer"], [f["fact_id"] for f in doc["fetches"]]) == \
+            (usual["answer"], [f["fact_id"] for f in usual["fetches"]])
 
 
 def test_same_seed_gives_the_same_policy(trained_demo):
