@@ -323,3 +323,27 @@ def test_bad_question_file_through_the_cli_exits_2_and_changes_nothing(tmp_path,
     where += [f"field '{field}'"] if field else []
     assert_one_line_error(*run_cli(command, "--questions", f, "--store", unchanged),
                           "q.jsonl", fragment, *where)
+
+
+def test_interrupt_exits_130_and_an_internal_fault_1_unless_debugging(unchanged, monkeypatch):
+    """Ctrl-C: exit status 130 and one line; an internal fault: exit status 1 and one line
+    naming HOPPER_DEBUG, which, when set, lets the traceback through instead."""
+    from hopper.api import Hopper
+
+    def interrupted(self, *a, **kw):
+        raise KeyboardInterrupt
+
+    def broken(self, *a, **kw):
+        raise RuntimeError("something inside broke")
+
+    monkeypatch.delenv("HOPPER_DEBUG", raising=False)
+    monkeypatch.setattr(Hopper, "info", interrupted)
+    assert run_cli("info", "--store", unchanged) == \
+        (130, "", "hopper: interrupted; the store is as it was before this command\n")
+    monkeypatch.setattr(Hopper, "info", broken)
+    assert run_cli("info", "--store", unchanged) == \
+        (1, "", "hopper: internal error: RuntimeError: something inside broke "
+                "(set HOPPER_DEBUG=1 for the traceback)\n")
+    monkeypatch.setenv("HOPPER_DEBUG", "1")
+    with pytest.raises(RuntimeError, match="something inside broke"):
+        run_cli("info", "--store", unchanged)
