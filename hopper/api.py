@@ -101,8 +101,9 @@ class Hopper:
         """Load fact tables (CSV, Parquet, JSON Lines); all or nothing unless ``skip_invalid``."""
         from .load import load
 
-        report = load(self.store, files, skip_invalid=skip_invalid, progress=progress,
-                      encoder=self._encoder_now())
+        # load makes its own encoder: the store's precision (int8 for a new store), not the
+        # fp32 one questions need.
+        report = load(self.store, files, skip_invalid=skip_invalid, progress=progress)
         self._graph = None
         try:  # make the fast question encoder now, while torch is loaded anyway
             from . import embed

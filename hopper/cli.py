@@ -146,7 +146,9 @@ def _cmd_info(args, hp):
     print(f"entities   {info['entities']}")
     print(f"relations  {info['relations']}")
     print(f"runs       {info['runs']}")
-    print(f"model      {info['model']}" + (f" ({info['model_dim']} dims)" if info.get("model_dim") else ""))
+    print(f"model      {info['model']}" + (f" ({info['model_dim']} dims" + (
+        f", {info['model_precision']} vectors" if info.get("model_precision") else "") + ")"
+        if info.get("model_dim") else ""))
     pol = info["policy"]
     if pol:
         sc = pol["scores"]

@@ -454,11 +454,29 @@ def _vectors_table(ids, vectors, id_name: str):
         pa.array(vectors.reshape(-1)), vectors.shape[1] if vectors.ndim == 2 else 384)})
 
 
-def check_model(con, identity: dict, path) -> None:
-    """Refuse to mix vectors of two embedding models in one store."""
+def store_precision(con) -> str | None:
+    """The encoder precision that made the store's vectors; None before its first load.
+    Stores made before precisions were recorded hold fp32 vectors."""
+    if Store.get_meta(con, "model_name") is None:
+        return None
+    return Store.get_meta(con, "model_precision", "fp32")
+
+
+def check_model(con, identity: dict, path, precision: str) -> None:
+    """Refuse to mix vectors of two embedding models, or of two precisions, in one store.
+
+    int8 vectors are 0.97 (worst) from fp32 ones in cosine, not the 0.999 within which the
+    fast and reference encoders count as one; a store keeps the precision it began with."""
     name = Store.get_meta(con, "model_name")
     if name is None:
         return
+    stored = store_precision(con)
+    if stored != precision:
+        raise InputError(
+            f"the store's vectors were made by the {stored} encoder, but this load would embed "
+            f"with the {precision} one; vectors of two precisions are not mixed", file=str(path),
+            hint=f"load with the {stored} encoder (hopper load picks it when it can be made), "
+                 "or into a new store")
     digest = Store.get_meta(con, "model_sha256")
     if name != identity["name"] or digest != identity["weights_sha256"] or \
             int(Store.get_meta(con, "model_dim")) != identity["dim"]:
@@ -504,9 +522,16 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     report.duplicates = report.rows_read - report.rejected - n_valid
 
     # Phase A (no lock held for long): find what is new, and embed it before writing.
-    encoder = encoder or embed.Encoder("auto")
+    # The store's own precision, or for a first load the load precision (int8).
+    stored = None
+    if store.exists():
+        with store.connect() as con:
+            stored = store_precision(con)
+    if encoder is None:
+        encoder = embed.Encoder("auto", precision=stored or embed.LOAD_PRECISION)
+    precision = getattr(encoder, "precision", "fp32")
     known_vectors: dict[str, object] = {}
-    pending = PendingVectors(store.path, identity["weights_sha256"])
+    pending = PendingVectors(store.path, identity["weights_sha256"], precision)
 
     def new_items(con):
         stage.execute("CREATE OR REPLACE TABLE have_hash (content_hash VARCHAR)")
@@ -567,7 +592,7 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
 
     if store.exists():
         with store.connect() as con:
-            check_model(con, identity, store.path)
+            check_model(con, identity, store.path, precision)
             new_items(con)
     else:
         new_items(None)
@@ -576,7 +601,7 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     # Phase B: one short write transaction; recheck what is new in case another load landed.
     created = not store.exists()
     try:
-        _write(store, stage, report, identity, new_items, embed_missing, known_vectors)
+        _write(store, stage, report, identity, precision, new_items, embed_missing, known_vectors)
     except BaseException:
         if created:  # the store did not exist before this command: leave no empty file behind
             for p in (store.path, *(Path(str(store.path) + x) for x in (".wal", ".gate", ".lock"))):
@@ -599,12 +624,12 @@ def _progress_bar(progress: bool, total: int):
     return tqdm(total=total, desc="embedding", unit="text", file=sys.stderr)
 
 
-def _write(store, stage, report, identity, new_items, embed_missing, known_vectors):
+def _write(store, stage, report, identity, precision, new_items, embed_missing, known_vectors):
     """Phase B of a load: one write transaction with everything new."""
     import numpy as np
 
     with store.transaction() as con:
-        check_model(con, identity, store.path)
+        check_model(con, identity, store.path, precision)
         new_items(con)
         embed_missing()
         fact_rows = stage.execute("SELECT text FROM new_facts").fetchall()
@@ -668,6 +693,7 @@ def _write(store, stage, report, identity, new_items, embed_missing, known_vecto
             Store.set_meta(con, "model_name", identity["name"])
             Store.set_meta(con, "model_dim", str(identity["dim"]))
             Store.set_meta(con, "model_sha256", identity["weights_sha256"])
+            Store.set_meta(con, "model_precision", precision)
         if fact_rows:
             version = int(Store.get_meta(con, "facts_version", "0")) + 1
             Store.set_meta(con, "facts_version", str(version))

@@ -20,14 +20,16 @@ def text_key(text: str) -> str:
 class PendingVectors:
     """A folder of ``chunk-*.npz`` files (keys as fixed-width text, vectors float32; no pickle).
 
-    One folder per store and embedding model: ``STORE.cache/pending-<model digest>/``.
+    One folder per store, embedding model and precision: ``STORE.cache/pending-<model
+    digest>/`` for fp32 vectors, ``pending-<model digest>-int8/`` for int8 ones.
     A load writes each embedded chunk here before it takes the write lock; a re-run after an
     interruption reads them back and embeds only the texts that are missing.  The folder is
     removed once the load has committed.
     """
 
-    def __init__(self, store_path, model_sha256: str):
-        self.folder = Path(str(store_path) + ".cache") / f"pending-{model_sha256[:16]}"
+    def __init__(self, store_path, model_sha256: str, precision: str = "fp32"):
+        suffix = "" if precision == "fp32" else f"-{precision}"
+        self.folder = Path(str(store_path) + ".cache") / f"pending-{model_sha256[:16]}{suffix}"
 
     def read(self, wanted: set[str]) -> dict[str, np.ndarray]:
         """Saved vectors of the texts in ``wanted`` (by text), from every readable chunk."""

@@ -388,6 +388,7 @@ class Store:
             model = self.get_meta(con, "model_name")
             dim = self.get_meta(con, "model_dim")
             digest = self.get_meta(con, "model_sha256")
+            precision = self.get_meta(con, "model_precision", "fp32" if model else None)
             row = first(con.execute("SELECT version, created_at, settings, scores FROM policies "
                               "WHERE active ORDER BY version DESC LIMIT 1"))
             n_policies = first(con.execute("SELECT count(*) FROM policies"))[0]
@@ -399,5 +400,5 @@ class Store:
         return {"facts": int(facts), "entities": int(entities), "relations": int(relations),
                 "runs": int(runs),
                 "model": model or "none", "model_dim": int(dim) if dim else None,
-                "model_sha256": digest,
+                "model_sha256": digest, "model_precision": precision,
                 "policy": policy, "store": str(self.path)}

@@ -36,7 +36,11 @@ FACTS = [
     ("Mirren gasket", "stored in", "Eskerhame", "", "depot list"),
     ("Zolt bracket", "made by", "Hask & \"Dunmore\"", MARKUP_TEXT, MARKUP_SOURCE),
     ("Hask & \"Dunmore\"", "based in", "Thessaly Point", "", "registry p. 7"),
-    ("Zolt bracket", "stored in", "Varrow Dock", "", "depot list"),
+    # A text of its own: the generated "Zolt bracket stored in Varrow Dock" was as close to
+    # the city question as the maker's fact (0.594 / 0.603 with fp32 vectors, 0.607 / 0.604
+    # with the int8 ones loads make), a near tie the walk could take either way.
+    ("Zolt bracket", "stored in", "Varrow Dock", "Spare Zolt brackets are kept at Varrow Dock.",
+     "depot list"),
     ("Quarnby", "located in", "Eastmarch", "", "atlas"),
     ("Morrowgate", "located in", "Westfold", "", "atlas"),
 ]

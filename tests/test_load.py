@@ -351,3 +351,53 @@ def test_generated_question_file_reads_exactly_its_questions_or_is_refused_at_th
             assert "no questions" in str(e.value)
         else:
             assert (e.value.line, e.value.field) == first_bad
+
+
+# ---------------------------------------------------------------------------- precision
+
+def _vectors(path, sql):
+    return np.array([r[0] for r in query(path, sql)], dtype=np.float32)
+
+
+def test_a_new_store_is_embedded_in_int8_and_stays_so(tmp_path):
+    from hopper import embed
+
+    hp = Hopper(tmp_path / "s.duckdb")
+    hp.load([write_csv(tmp_path / "a.csv", [("KX-2041", "made_by", "Acme, Inc.")])])
+    assert hp.info()["model_precision"] == "int8"
+    hp.load([write_csv(tmp_path / "b.csv", [("KX-2042", "made_by", "Bolt Works")])])
+    assert hp.info()["model_precision"] == "int8"
+    # int8 vectors (which depend a little on their batch mates, so they are not recomputed
+    # here): close to fp32 ones, and not them.
+    texts = [r[0] for r in query(hp.path, "SELECT text FROM facts ORDER BY fact_id")]
+    fp32 = embed.Encoder("fast").encode(texts)
+    got = _vectors(hp.path, "SELECT embedding FROM fact_vectors ORDER BY fact_id")
+    assert np.sum(got * fp32, axis=1).min() >= 0.96
+    assert np.abs(got - fp32).max(axis=1).min() > 1e-4
+
+
+def test_an_fp32_store_keeps_loading_fp32_and_refuses_int8(tmp_path):
+    # Stores made before precisions were recorded hold fp32 vectors and have no
+    # model_precision: they go on loading with the fp32 encoder; int8 is refused.
+    from hopper import embed
+    from hopper.load import load
+    from hopper.store import Store
+
+    path = tmp_path / "s.duckdb"
+    load(Store(path), [write_csv(tmp_path / "a.csv", [("KX-2041", "made_by", "Acme, Inc.")])],
+         encoder=embed.Encoder("auto"))
+    assert Hopper(path).info()["model_precision"] == "fp32"
+    con = duckdb.connect(str(path))
+    con.execute("DELETE FROM meta WHERE key = 'model_precision'")
+    con.close()
+    assert Hopper(path).info()["model_precision"] == "fp32"
+    before = query(path, "SELECT fact_id, embedding FROM fact_vectors ORDER BY fact_id")
+    with pytest.raises(InputError, match="precisions are not mixed"):
+        load(Store(path), [write_csv(tmp_path / "b.csv", [("KX-2042", "made_by", "Bolt Works")])],
+             encoder=embed.Encoder("fast", precision="int8"))
+    assert query(path, "SELECT fact_id, embedding FROM fact_vectors ORDER BY fact_id") == before
+    hp = Hopper(path)
+    hp.load([tmp_path / "b.csv"])
+    got = _vectors(path, "SELECT embedding FROM fact_vectors ORDER BY fact_id")
+    texts = [r[0] for r in query(path, "SELECT text FROM facts ORDER BY fact_id")]
+    np.testing.assert_allclose(got, embed.Encoder("fast").encode(texts), atol=1e-5)

@@ -21,8 +21,9 @@ def write_facts(path, n):
 class CountingEncoder:
     """The real fast encoder, counting the texts it embeds; can fail on its n-th call."""
 
-    def __init__(self, fail_on_call=None):
-        self.inner = embed.Encoder("auto")
+    def __init__(self, fail_on_call=None, precision="fp32"):
+        self.inner = embed.Encoder("auto", precision=precision)
+        self.precision = self.inner.precision
         self.texts = []
         self.calls = 0
         self.fail_on_call = fail_on_call
@@ -76,14 +77,14 @@ def test_interrupted_load_resumes_embedding_only_the_rest(tmp_path, monkeypatch)
 def test_failed_load_into_existing_store_leaves_it_as_it_was(tmp_path, monkeypatch):
     monkeypatch.setattr(load_mod, "CHUNK", 40)
     store = tmp_path / "s.duckdb"
-    Hopper(store).load([write_facts(tmp_path / "a.csv", 20)])
+    Hopper(store).load([write_facts(tmp_path / "a.csv", 20)])  # a new store: int8 vectors
     before = stored_vectors(store)
     f = write_facts(tmp_path / "b.csv", 120)  # 100 new facts, 100 new entities
     with pytest.raises(KeyboardInterrupt):
-        run_load(store, f, CountingEncoder(fail_on_call=3))
+        run_load(store, f, CountingEncoder(fail_on_call=3, precision="int8"))
     after = stored_vectors(store)
     assert after[0] == before[0] and np.array_equal(after[1], before[1])
-    again = CountingEncoder()
+    again = CountingEncoder(precision="int8")
     report = run_load(store, f, again)
     assert report["facts_added"] == 100 and report["reused"] == 80
     assert report["embedded"] == 200 - 80 == len(again.texts)
