@@ -41,7 +41,8 @@ A policy trained with the one-hop scorer (``reward_scorer``, ``hopper.scorer``) 
 ``S_ent``/``S_rel`` and weighs a completion question's answers by it (``scorer_weight``,
 chosen on the validation questions; 0 leaves the beam scores as they are):
 
-    answer     score(e) = sum over beams ending on e of pi(beam) * p_scorer(e | start, r_q) ** w
+    answer     score(e) ~ sum over beams ending on e of pi(beam) * p_scorer(e | start, r_q) ** w
+               (rescaled to the beam scores' total)
 """
 from __future__ import annotations
 

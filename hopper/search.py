@@ -210,7 +210,8 @@ def _entity_map(policy: pol.Policy, graph: Graph, key: str = "entities"):
 
 def weigh_by_scorer(policy: pol.Policy, graph: Graph, start: int, qrel: int, scores: dict) -> dict:
     """A completion question's answer scores times the kept one-hop scorer's probability to the
-    power ``scorer_weight`` (policy.py); as they were without a kept scorer, a weight of 0 or
+    power ``scorer_weight`` (policy.py), rescaled to the total they had (so scores keep their
+    size where ``ask`` rounds them); as they were without a kept scorer, a weight of 0 or
     an asked relation the policy does not know.  An entity the scorer has no row for (added
     after training) gets the mean probability of the others."""
     weight = float(policy.settings.get("scorer_weight", 0.0))
@@ -230,7 +231,9 @@ def weigh_by_scorer(policy: pol.Policy, graph: Graph, start: int, qrel: int, sco
         scorer = Scorer(policy.params["S_ent"], policy.params["S_rel"])
         p[inside] = scorer.probs_of(int(rows[start]), qrel, er[inside])
     p[~inside] = np.nanmean(p) if inside.any() else 1.0
-    return {e: v * float(q) ** weight for e, v, q in zip(ents, scores.values(), p)}
+    weighed = np.fromiter(scores.values(), np.float64, len(ents)) * p ** weight
+    weighed *= sum(scores.values()) / max(weighed.sum(), 1e-300)  # the same total as before
+    return dict(zip(ents, weighed.tolist()))
 
 
 def _softmax(x: np.ndarray) -> np.ndarray:

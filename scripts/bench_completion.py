@@ -245,8 +245,8 @@ def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None 
 
     Each distinct (start, relation) query is searched once; its scores rank each of its gold
     answers, with the other known answers (train + valid + test) filtered out.  Returns ranks
-    for "policy" (beam scores only), for "backoff" (entities the beam did not reach, and ties,
-    ordered by ``prior``: {relation: {entity: count}}), per direction, and how many gold
+    for "policy" (beam scores only), for "backoff" (entities the beam did not reach ordered
+    by ``prior``: {relation: {entity: count}}, after the reached ones), per direction, and how many gold
     answers the beam reached at all.
 
     With ``hide`` ({(start, relation): {answers known from train}}) the facts stating those
@@ -263,7 +263,7 @@ def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None 
         scores = {d["answer"]: d["score"] for d in doc["ranked"] if d["answer"] in ents}
         p = (prior or {}).get(r, {})
         top = max(p.values(), default=0) + 1
-        mixed = {e: scores.get(e, -1.0) + p.get(e, 0) / top * 1e-3 for e in entities}
+        mixed = {e: scores[e] if e in scores else -1.0 + p.get(e, 0) / top for e in entities}
         for g in sorted(qs[(s, r)]):
             true = known.get((s, r), set())
             rk = filtered_rank(scores, g, true, len(entities))

@@ -190,7 +190,8 @@ def test_all_then_one_curriculum_switches_episodes():
 
 
 def test_kept_scorer_weighs_completion_answers_by_complex_probability():
-    """hopper.search.weigh_by_scorer: answer score x p(answer | start, relation) ** weight, with
+    """hopper.search.weigh_by_scorer: answer score x p(answer | start, relation) ** weight
+    (rescaled to the scores' total), with
     p = sigmoid(Re(<e_s, w_r, conj(e_o)>)), the ComplEx score of Trouillon et al. (ICML 2016,
     eq. 6), computed here with numpy's complex numbers (independent of hopper.scorer's real
     arithmetic).  Weight 0 leaves the scores; an entity the scorer never saw (added after
@@ -216,6 +217,7 @@ def test_kept_scorer_weighs_completion_answers_by_complex_probability():
     got = weigh_by_scorer(policy, g, e("a"), 0, dict(scores))
     mean = (p[1] + p[2]) / 2
     want = {e("b"): 0.5 * p[1] ** 2, e("c"): 0.3 * p[2] ** 2, e("d"): 0.2 * mean ** 2}
+    want = {x: v / sum(want.values()) for x, v in want.items()}  # rescaled to the total, 1.0
     assert got.keys() == want.keys()
     assert all(abs(got[x] - want[x]) < 1e-5 for x in want)
     policy.settings["scorer_weight"] = 0.0
