@@ -507,7 +507,8 @@ class Hopper:
         for q, out, ms in results:
             run_id = uuid.uuid4().hex[:16]
             names = graph.entity_names
-            ranked = [{"answer": names[e], "score": round(float(s), 6)} for e, s in out.ranked[:top]]
+            # six significant digits, not six decimals: small scores keep their order
+            ranked = [{"answer": names[e], "score": float(f"{s:.6g}")} for e, s in out.ranked[:top]]
             answer = None if out.abstained or not out.ranked else names[out.ranked[0][0]]
             doc = {"run_id": run_id, "question": q.text, "answer": answer,
                    "confidence": round(float(out.confidence), 6), "abstained": bool(out.abstained or answer is None),

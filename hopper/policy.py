@@ -36,6 +36,13 @@ per entity known at training time plus a last row shared by every other entity. 
 that one row only, zero and not trained, so the policy stays entity-free and carries to
 entities no training question saw; on, it can learn what each entity of a fixed set (UMLS,
 Kinship) is like, as the published walkers do.
+
+A policy trained with the one-hop scorer (``reward_scorer``, ``hopper.scorer``) keeps it as
+``S_ent``/``S_rel`` and weighs a completion question's answers by it (``scorer_weight``,
+chosen on the validation questions; 0 leaves the beam scores as they are):
+
+    answer     score(e) ~ sum over beams ending on e of pi(beam) * p_scorer(e | start, r_q) ** w
+               (rescaled to the beam scores' total)
 """
 from __future__ import annotations
 
@@ -340,9 +347,11 @@ class Policy:
     def threshold(self) -> float:
         return float(self.settings.get("threshold", 0.0))
 
-    def entity_map(self, graph_entities: list[str]) -> np.ndarray | None:
-        """Graph entity index -> row of the learned entity vectors (None when it has none)."""
-        names = self.settings.get("entities")
+    def entity_map(self, graph_entities: list[str], key: str = "entities") -> np.ndarray | None:
+        """Graph entity index -> row of the learned entity vectors (None when it has none);
+        ``key="scorer_entities"``: row of the kept scorer's entities.  An entity unknown at
+        training time maps to the row after the last."""
+        names = self.settings.get(key)
         if not names:
             return None
         index = {n: i for i, n in enumerate(names)}

@@ -10,7 +10,8 @@ and  score(s, r, o) = Re(<e_s, w_r, conj(e_o)>).  It is trained with 1-N scoring
 entity scored at once for a (start, relation) query) and binary cross-entropy with label
 smoothing, on the training questions' (start, asked relation, answers), so an inverse asked
 relation is simply its own relation row (the "reciprocal" set-up).  Training uses torch; the
-fitted scorer is plain numpy.  It is used only while training; it is not stored.
+fitted scorer is plain numpy.  The policy keeps it and weighs completion answers by it where
+that measured better on the validation questions (``hopper.search.weigh_by_scorer``).
 """
 from __future__ import annotations
 
@@ -35,10 +36,18 @@ class Scorer:
     def probs(self, starts, relations) -> np.ndarray:
         return 1.0 / (1.0 + np.exp(-self.logits(starts, relations)))
 
+    def probs_of(self, start: int, relation: int, answers) -> np.ndarray:
+        """The probabilities of some ``answers`` (entity rows) only, for one query: [A]."""
+        k = self.ent.shape[1] // 2
+        s, r, o = self.ent[start], self.rel[relation], self.ent[np.asarray(answers, np.int64)]
+        sr, si, rr, ri = s[:k], s[k:], r[:k], r[k:]
+        logits = o[:, :k] @ (sr * rr - si * ri) + o[:, k:] @ (sr * ri + si * rr)
+        return 1.0 / (1.0 + np.exp(-logits))
 
-def fit_scorer(queries: list, n_entities: int, n_relations: int, epochs: int = 200,
-               dim: int = 100, lr: float = 0.01, batch: int = 128, smoothing: float = 0.1,
-               dropout: float = 0.2, seed: int = 0, log=None) -> Scorer:
+
+def fit_scorer(queries: list, n_entities: int, n_relations: int, epochs: int = 600,
+               dim: int = 200, lr: float = 0.003, batch: int = 128, smoothing: float = 0.2,
+               dropout: float = 0.3, seed: int = 0, log=None) -> Scorer:
     """Fit ComplEx on ``queries``: [(start entity, relation, {answer entities})]."""
     import torch
 

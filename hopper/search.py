@@ -191,19 +191,49 @@ def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
         for lp, e, st in sorted(finished[k], key=lambda b: -b[0]):
             scores[e] = scores.get(e, 0.0) + math.exp(lp)
             best.setdefault(e, st)
+        if eps[k].qrel >= 0:
+            scores = weigh_by_scorer(policy, graph, eps[k].starts[0], int(qrel[k]), scores)
         outs[k] = _finish(scores, best, eps[k].starts)
     return outs
 
 
-def _entity_map(policy: pol.Policy, graph: Graph):
-    """policy.entity_map for this graph, remembered on the policy (None: no entity vectors)."""
-    if not policy.settings.get("entities"):
+def _entity_map(policy: pol.Policy, graph: Graph, key: str = "entities"):
+    """policy.entity_map for this graph, remembered on the policy (None: no such rows)."""
+    if not policy.settings.get(key):
         return None
-    cached = policy.__dict__.get("_entmap")
+    cached = policy.__dict__.get("_map_" + key)
     if cached is None or cached[0] is not graph:
-        cached = (graph, policy.entity_map(graph.entity_names))
-        policy.__dict__["_entmap"] = cached
+        cached = (graph, policy.entity_map(graph.entity_names, key))
+        policy.__dict__["_map_" + key] = cached
     return cached[1]
+
+
+def weigh_by_scorer(policy: pol.Policy, graph: Graph, start: int, qrel: int, scores: dict) -> dict:
+    """A completion question's answer scores times the kept one-hop scorer's probability to the
+    power ``scorer_weight`` (policy.py), rescaled to the total they had (so scores keep their
+    size where ``ask`` rounds them); as they were without a kept scorer, a weight of 0 or
+    an asked relation the policy does not know.  An entity the scorer has no row for (added
+    after training) gets the mean probability of the others."""
+    weight = float(policy.settings.get("scorer_weight", 0.0))
+    rows = _entity_map(policy, graph, "scorer_entities")
+    if weight <= 0 or rows is None or qrel < 0 or not scores or "S_ent" not in policy.params:
+        return scores
+    from .scorer import Scorer
+
+    known = len(policy.settings["scorer_entities"])
+    if rows[start] >= known:
+        return scores
+    ents = list(scores)
+    er = rows[np.asarray(ents, np.int64)]
+    p = np.full(len(ents), np.nan)
+    inside = er < known
+    if inside.any():
+        scorer = Scorer(policy.params["S_ent"], policy.params["S_rel"])
+        p[inside] = scorer.probs_of(int(rows[start]), qrel, er[inside])
+    p[~inside] = np.nanmean(p) if inside.any() else 1.0
+    weighed = np.fromiter(scores.values(), np.float64, len(ents)) * p ** weight
+    weighed *= sum(scores.values()) / max(weighed.sum(), 1e-300)  # the same total as before
+    return dict(zip(ents, weighed.tolist()))
 
 
 def _softmax(x: np.ndarray) -> np.ndarray:

@@ -54,8 +54,9 @@ class TrainSettings:
     entity_embed: bool = False  # learn a vector per entity (fixed entity sets, e.g. UMLS); off
     #                             keeps the policy entity-free, so it carries to unseen entities
     reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
-    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0
-    scorer_epochs: int = 200    # training epochs of that scorer
+    #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0;
+    #                              the policy keeps the scorer to weigh answers (keep_scorer)
+    scorer_epochs: int = 600    # training epochs of that scorer
     completion_episodes: str = "one-answer"  # completion questions whose answers facts state:
     #                              "one-answer": an episode per answer, only its facts hidden,
     #                              the other answers visible and unrewarded (as a test meets
@@ -318,6 +319,28 @@ def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
     return float(np.mean(hits)) if hits else 0.0, float(np.mean(rr)) if rr else 0.0, conf
 
 
+SCORER_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 4.0, 8.0)  # the powers of the scorer tried on validation
+
+
+def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam: int,
+                log=None) -> None:
+    """Keep the reward scorer in ``policy`` and set the power its probability weighs completion
+    answers with (``hopper.search.weigh_by_scorer``): the weight in SCORER_WEIGHTS with the best
+    validation Hits@1 (then MRR; the smaller weight on a tie, 0 = the beam scores alone)."""
+    policy.params |= {"S_ent": scorer.ent, "S_rel": scorer.rel}
+    policy.settings["scorer_entities"] = list(graph.entity_names)
+    tried = []
+    for w in SCORER_WEIGHTS:
+        policy.settings["scorer_weight"] = w
+        vh, vm, _ = validate(graph, policy, valid_eps, beam)
+        tried.append((vh, vm, -w))
+    best = max(tried)
+    policy.settings["scorer_weight"] = -best[2]
+    if log:
+        log("scorer weight on validation Hits@1: " +
+            ", ".join(f"{-w:g}: {h:.3f}" for h, _, w in tried) + f"; kept {-best[2]:g}")
+
+
 def choose_threshold(conf: list) -> float:
     """The confidence below which to abstain: maximise (right answers - wrong answers) kept."""
     if not conf:
@@ -547,6 +570,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         bar.close()
     elapsed = time.monotonic() - started
     policy = pol.Policy(best_params, base_settings)
+    if scorer is not None and valid_eps:
+        keep_scorer(graph, policy, scorer, valid_eps, settings.beam, log)
     vh, vm, conf = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (0.0, 0.0, [])
     policy.settings["threshold"] = choose_threshold(conf)
     summary = {"epochs": len(curve), "seconds": round(elapsed, 1),

@@ -239,32 +239,31 @@ def _patched(changes):
 
 # -- evaluation ------------------------------------------------------------------------------------
 def rank_queries(hp, test, known: dict, entities: list[str], prior: dict | None = None,
-                 both: bool = True, beam: int | None = None, hide: dict | None = None) -> dict:
+                 both: bool = True, beam: int | None = None, hide: dict | None = None,
+                 scorer_weight: float | None = None) -> dict:
     """Filtered rank of every test triple's answer (each direction a query), from beam scores.
 
     Each distinct (start, relation) query is searched once; its scores rank each of its gold
     answers, with the other known answers (train + valid + test) filtered out.  Returns ranks
-    for "policy" (beam scores only), for "backoff" (entities the beam did not reach, and ties,
-    ordered by ``prior``: {relation: {entity: count}}), per direction, and how many gold
+    for "policy" (beam scores only), for "backoff" (entities the beam did not reach ordered
+    by ``prior``: {relation: {entity: count}}, after the reached ones), per direction, and how many gold
     answers the beam reached at all.
 
     With ``hide`` ({(start, relation): {answers known from train}}) the facts stating those
     known answers are hidden from the search, as they were in training (see search_hiding)."""
     qs = queries(test, both)
     keys = sorted(qs)
-    if hide is not None:
-        docs = search_hiding(hp, keys, hide, beam)
-    else:
-        with _beam_width(beam):
-            docs = hp.ask_many([{"subject": s, "relation": r} for s, r in keys],
-                               top=min(1000, len(entities) + 1), record=False)
+    with _policy_settings(beam=beam, scorer_weight=scorer_weight):
+        docs = search_hiding(hp, keys, hide, beam) if hide is not None else hp.ask_many(
+            [{"subject": s, "relation": r} for s, r in keys], top=min(1000, len(entities) + 1),
+            record=False)
     ents = set(entities)
     out = {"policy": [], "backoff": [], "tail": [], "head": [], "reached": 0}
     for (s, r), doc in zip(keys, docs):
         scores = {d["answer"]: d["score"] for d in doc["ranked"] if d["answer"] in ents}
         p = (prior or {}).get(r, {})
         top = max(p.values(), default=0) + 1
-        mixed = {e: scores.get(e, -1.0) + p.get(e, 0) / top * 1e-3 for e in entities}
+        mixed = {e: scores[e] if e in scores else -1.0 + p.get(e, 0) / top for e in entities}
         for g in sorted(qs[(s, r)]):
             true = known.get((s, r), set())
             rk = filtered_rank(scores, g, true, len(entities))
@@ -295,19 +294,20 @@ def search_hiding(hp, keys, hide: dict, beam: int | None = None) -> list[dict]:
 
 
 @contextlib.contextmanager
-def _beam_width(beam):
-    """Search with another beam width than the policy was trained and stored with."""
-    if beam is None:
+def _policy_settings(**changes):
+    """Search with other settings than the policy was stored with (None: leave it)."""
+    changes = {k: v for k, v in changes.items() if v is not None}
+    if not changes:
         yield
         return
     from hopper.policy import Policy
 
     orig = Policy.read.__func__
 
-    def read(cls, con, version=None):
+    def read(cls, con, version=None, known=None):
         p = orig(cls, con, version)
         if p is not None:
-            p.settings["beam"] = beam
+            p.settings.update(changes)
         return p
 
     with _patched([(Policy, "read", classmethod(read))]):
@@ -453,8 +453,11 @@ def main(argv=None) -> int:
     t0 = time.monotonic()
     prior = relation_prior(train)
     with hide_both_ways():
-        res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam,
-                           hide=known_answers(train, inverse=inverse) if args.hide_known else None)
+        hide = known_answers(train, inverse=inverse) if args.hide_known else None
+        res = rank_queries(hp, test, known, entities, prior=prior, beam=args.beam, hide=hide)
+        weight = float((hp._policy().settings or {}).get("scorer_weight", 0.0))
+        alone = rank_queries(hp, test, known, entities, beam=args.beam, hide=hide,
+                             scorer_weight=0.0) if weight > 0 else None
     eval_s = time.monotonic() - t0
     ours = ranking_metrics(res["policy"])
     base = ranking_metrics(frequency_ranks(train, test, known, entities))
@@ -464,15 +467,18 @@ def main(argv=None) -> int:
     print(f"| {'method':<48} | Hits@1 | Hits@3 | Hits@10 |  MRR  |")
     print(f"|{'-' * 50}|--------|--------|---------|-------|")
     print(_row("hopper policy, beam search (this run)" +
-               (", known hidden" if args.hide_known else ""), ours))
+               (", known hidden" if args.hide_known else "") +
+               (f", scorer weight {weight:g}" if weight > 0 else ""), ours))
     print(_row("  tail queries (s, r, ?) only", ranking_metrics(res["tail"])))
     print(_row("  head queries (?, r, o) only", ranking_metrics(res["head"])))
     print(_row("  + relation-frequency back-off (unreached)", ranking_metrics(res["backoff"])))
+    if alone is not None:
+        print(_row("  beam scores alone (scorer weight 0)", ranking_metrics(alone["policy"])))
     print(_row("relation-frequency baseline (this run)", base))
     if str(settings.get("reward_scorer", "none")).startswith("complex"):
         t1 = time.monotonic()
         sc = ranking_metrics(scorer_ranks(hp, train, test, known, entities,
-                                          int(settings.get("scorer_epochs", 200)), args.seed))
+                                          int(settings.get("scorer_epochs", 600)), args.seed))
         print(_row("one-hop ComplEx scorer alone (shaping reward)", sc))
         log(f"scorer reference row: {time.monotonic() - t1:.0f} s")
     for name, h1, h3, h10, mrr in PUBLISHED[args.dataset]:
@@ -489,7 +495,8 @@ def main(argv=None) -> int:
     print(f"evaluation {eval_s / 60:.1f} min; load {load_s:.0f} s; total "
           f"{(time.monotonic() - t_start) / 60:.1f} min")
     pol = hp.info().get("policy") or {}
-    beam = args.beam or settings.get("beam")
+    beam = max(int(args.beam or settings.get("beam")), min(1000, len(entities) + 1))  # ask's
+    #      beam is widened to the --top it is asked for (hopper.api.Hopper._beam): every entity
     print(f"settings: max_hops={max_hops} " + " ".join(
         f"{k}={v}" for k, v in settings.items() if k not in ("time_budget", "beam")) +
         f" beam={beam}; other training settings: hopper.train.TrainSettings defaults"

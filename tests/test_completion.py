@@ -187,3 +187,41 @@ def test_all_then_one_curriculum_switches_episodes():
     for mode, want in (("all-answers", all_eps), ("one-answer", one_eps)):
         s = tr.TrainSettings(completion_episodes=mode)
         assert all(tr.epoch_episodes(s, k, all_eps, one_eps) is want for k in range(4))
+
+
+def test_kept_scorer_weighs_completion_answers_by_complex_probability():
+    """hopper.search.weigh_by_scorer: answer score x p(answer | start, relation) ** weight
+    (rescaled to the scores' total), with
+    p = sigmoid(Re(<e_s, w_r, conj(e_o)>)), the ComplEx score of Trouillon et al. (ICML 2016,
+    eq. 6), computed here with numpy's complex numbers (independent of hopper.scorer's real
+    arithmetic).  Weight 0 leaves the scores; an entity the scorer never saw (added after
+    training) gets the mean probability of the others; a start it never saw leaves them too."""
+    import numpy as np
+
+    from helpers import make_graph
+    from hopper.policy import Policy
+    from hopper.search import weigh_by_scorer
+
+    g = make_graph([("a", "r", "b"), ("a", "r", "c"), ("b", "r", "d")])
+    e = g.entity_index
+    rng = np.random.default_rng(3)
+    k = 4
+    ent, rel = rng.normal(size=(3, 2 * k)), rng.normal(size=(1, 2 * k))  # rows for a, b, c only
+    settings = {"relations": ["r"], "scorer_entities": ["a", "b", "c"], "scorer_weight": 2.0}
+    policy = Policy({"S_ent": ent, "S_rel": rel}, settings)
+    ent, rel = policy.params["S_ent"].astype(np.float64), policy.params["S_rel"].astype(np.float64)
+    cplx = ent[:, :k] + 1j * ent[:, k:]
+    w = rel[0, :k] + 1j * rel[0, k:]
+    p = 1 / (1 + np.exp(-np.real((cplx[0] * w) @ np.conj(cplx).T)))  # a, r -> a, b, c
+    scores = {e("b"): 0.5, e("c"): 0.3, e("d"): 0.2}
+    got = weigh_by_scorer(policy, g, e("a"), 0, dict(scores))
+    mean = (p[1] + p[2]) / 2
+    want = {e("b"): 0.5 * p[1] ** 2, e("c"): 0.3 * p[2] ** 2, e("d"): 0.2 * mean ** 2}
+    want = {x: v / sum(want.values()) for x, v in want.items()}  # rescaled to the total, 1.0
+    assert got.keys() == want.keys()
+    assert all(abs(got[x] - want[x]) < 1e-5 for x in want)
+    policy.settings["scorer_weight"] = 0.0
+    assert weigh_by_scorer(policy, g, e("a"), 0, dict(scores)) == scores
+    policy.settings["scorer_weight"] = 2.0
+    assert weigh_by_scorer(policy, g, e("d"), 0, dict(scores)) == scores  # unknown start
+    assert weigh_by_scorer(policy, g, e("a"), -1, dict(scores)) == scores  # unknown relation
