@@ -60,6 +60,13 @@ def demo_questions(split="test", n=None):
     return rows[:n] if n else rows
 
 
+# Runs a command and reports the peak resident memory of its process tree (what waited on).
+PEAK_RSS = ("import resource, subprocess, sys\n"
+            "code = subprocess.run(sys.argv[1:]).returncode\n"
+            "print('peak_rss_kb', resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, file=sys.stderr)\n"
+            "sys.exit(code)\n")
+
+
 def build_store(size: str, train_budget: float) -> dict:
     """The cached store of this size (built and trained when missing) and its build record."""
     BENCH.mkdir(exist_ok=True)
@@ -77,10 +84,11 @@ def build_store(size: str, train_budget: float) -> dict:
             shutil.rmtree(p) if p.is_dir() else p.unlink()
         print(f"building {store} (embeds every text once; minutes at 100k) ...", file=sys.stderr)
         t = time.perf_counter()
-        out = run(HOPPER + ["load", str(csv), "--store", str(store), "--json"])
+        out = run([sys.executable, "-c", PEAK_RSS] + HOPPER + ["load", str(csv), "--store", str(store), "--json"])
         if out.returncode:
             raise SystemExit(out.stderr)
-        info = {"load_s": time.perf_counter() - t, "report": json.loads(out.stdout)}
+        info = {"load_s": time.perf_counter() - t, "report": json.loads(out.stdout),
+                "peak_rss_mb": int(out.stderr.rsplit("peak_rss_kb ", 1)[1].split()[0]) / 1024}
         record.write_text(json.dumps(info))
     if "train" not in info:
         print(f"training a policy on {store} ({train_budget} s budget) ...", file=sys.stderr)
@@ -287,6 +295,9 @@ def main():
         rep = info["report"]
         add("`hopper load` when built, facts/s (recorded)", s, f"{rep['facts_added'] / info['load_s']:.0f}",
             "-", "-", "-", f"{info['load_s']:.0f} s, {rep['embedded']} texts embedded")
+        if "peak_rss_mb" in info:
+            add("`hopper load` when built, peak RSS, MB (recorded)", s, f"{info['peak_rss_mb']:.0f}",
+                "-", "-", "-", f"< 4096 at 1M: {'met' if info['peak_rss_mb'] < 4096 else 'MISSED'}")
         per_db, per_cache = sizes_on_disk(info["store"], rep["facts_added"])
         add("store size per fact, bytes", s, f"{per_db:.0f}", "-", "-", "-",
             f"+ {per_cache:.0f} B/fact of cache beside it")
