@@ -264,19 +264,11 @@ def ensure_fast_model() -> pathlib.Path:
         def build(tmp: pathlib.Path) -> None:
             reference = _load_reference()
             _export_fp32(tmp, reference)
-            got = _OnnxEncoder(tmp / "model.onnx", optimized=False).encode(_CHECK_TEXTS, 64, False)
-            want = _reference_encode(reference, _CHECK_TEXTS, 64, False)
-            worst = _worst_cosine(got, want)
-            if not worst >= _EXPORT_MIN_COSINE:
-                raise EmbedError(f"the ONNX export of {MODEL_NAME} disagrees with the reference "
-                                 f"encoder (cosine {worst:.4f} < {_EXPORT_MIN_COSINE}); not cached")
+            _require_agreement(tmp, _reference_encode(reference, _CHECK_TEXTS, 64, False),
+                               _EXPORT_MIN_COSINE, "the ONNX export", "the reference encoder")
 
-        try:
-            _publish(build, final.parent)
-        except EmbedError:
-            raise
-        except Exception as e:  # torch's exporter fails in many ways; name the step
-            raise EmbedError(f"could not export {MODEL_NAME} to ONNX: {type(e).__name__}: {e}") from e
+        _publish_checked(build, final.parent, f"export {MODEL_NAME} to ONNX")  # torch's exporter
+        #                                                                     fails in many ways
     _ensure_optimized(final)
     return final
 
@@ -308,20 +300,32 @@ def ensure_int8_model() -> pathlib.Path:
                              use_external_data_format=False)
         finally:
             logging.disable(quiet)
-        got = _OnnxEncoder(tmp / "model.onnx", optimized=False).encode(_CHECK_TEXTS, 64, False)
-        want = _OnnxEncoder(plain).encode(_CHECK_TEXTS, 64, False)
-        worst = _worst_cosine(got, want)
-        if not worst >= _INT8_MIN_COSINE:
-            raise EmbedError(f"the int8 model of {MODEL_NAME} disagrees with the fp32 export "
-                             f"(cosine {worst:.4f} < {_INT8_MIN_COSINE}); not cached")
+        _require_agreement(tmp, _OnnxEncoder(plain).encode(_CHECK_TEXTS, 64, False),
+                           _INT8_MIN_COSINE, "the int8 model", "the fp32 export")
 
+    _publish_checked(build, final.parent, f"quantise {MODEL_NAME} to int8")
+    return final
+
+
+def _require_agreement(tmp: pathlib.Path, want: np.ndarray, floor: float, made: str,
+                       against: str) -> None:
+    """Refuse to cache the model just built in ``tmp`` unless it encodes the check texts like
+    ``want`` (cosine at least ``floor`` for every text)."""
+    got = _OnnxEncoder(tmp / "model.onnx", optimized=False).encode(_CHECK_TEXTS, 64, False)
+    worst = _worst_cosine(got, want)
+    if not worst >= floor:
+        raise EmbedError(f"{made} of {MODEL_NAME} disagrees with {against} "
+                         f"(cosine {worst:.4f} < {floor}); not cached")
+
+
+def _publish_checked(build, dest: pathlib.Path, step: str) -> None:
+    """``_publish(build, dest)``, any failure but a disagreement named as the step that failed."""
     try:
-        _publish(build, final.parent)
+        _publish(build, dest)
     except EmbedError:
         raise
     except Exception as e:  # noqa: BLE001 - name the step
-        raise EmbedError(f"could not quantise {MODEL_NAME} to int8: {type(e).__name__}: {e}") from e
-    return final
+        raise EmbedError(f"could not {step}: {type(e).__name__}: {e}") from e
 
 
 # --------------------------------------------------------------------------- backends
