@@ -469,7 +469,7 @@ class _OnnxEncoder:
     @staticmethod
     def _session(ort, path: pathlib.Path, optimized: bool, prepack: bool = True):
         so = ort.SessionOptions()
-        so.intra_op_num_threads = _encoder_threads()
+        so.intra_op_num_threads = _encoder_threads()  # read again per chunk (_follow_load)
         so.inter_op_num_threads = 1
         so.graph_optimization_level = (ort.GraphOptimizationLevel.ORT_DISABLE_ALL if optimized
                                        else ort.GraphOptimizationLevel.ORT_ENABLE_ALL)
@@ -477,6 +477,18 @@ class _OnnxEncoder:
         if not prepack:
             so.add_session_config_entry("session.disable_prepacking", "1")
         return ort.InferenceSession(str(path), so, providers=["CPUExecutionProvider"])
+
+    def _follow_load(self) -> None:
+        """Remake the session when the thread count ``_encoder_threads`` gives now differs from
+        the session's: a long load started while the machine was busy would otherwise stay on
+        one thread after it frees (the 1M load ran 44 min on one of two idle cores).  Not for a
+        few texts (a cold ``ask``), where it would only cost time."""
+        want = _encoder_threads()
+        have = self.session.get_session_options().intra_op_num_threads
+        if want != have:
+            import onnxruntime as ort
+
+            self.session = self._session(ort, self.model_path, self._optimized, self.prepacked)
 
     def _prepack(self) -> None:
         """Replace a session made for a few texts by the pre-packed one (faster per text)."""
@@ -519,6 +531,8 @@ class _OnnxEncoder:
             bar = tqdm(total=n, desc="encoding", unit="text", file=sys.stderr)
         try:
             for base in range(0, n, self._CHUNK):
+                if base or not few:
+                    self._follow_load()
                 chunk = texts[base:base + self._CHUNK]
                 encodings = self.tokenizer.encode_batch(chunk, add_special_tokens=True)
                 lengths = np.fromiter((len(e.ids) for e in encodings), dtype=np.int64,

@@ -291,3 +291,19 @@ def test_batches_do_not_pad_short_texts_to_long_ones():
     assert got == [[30, 16, 16, 15], [9, 8], [4, 3, 3, 2]]
     assert [len(b) for b in embed._batches(order, lengths, 3)] == [3, 3, 3, 1]
     assert sorted(np.concatenate(embed._batches(order, lengths, 2)).tolist()) == list(range(10))
+
+
+def test_a_long_job_follows_the_thread_count_and_keeps_its_vectors(cache, monkeypatch):
+    """A load re-reads the encoder's thread count before each chunk (the machine may have freed
+    up since it began): the session is remade with the new count, and the vectors stay the same
+    (common practice: onnxruntime splits work across threads, not the sums inside one output,
+    so the numbers match to float rounding)."""
+    texts = [f"Part KX-{i} is made by Ostrel Works in Quarnby." for i in range(40)]
+    monkeypatch.setenv("HOPPER_ENCODER_THREADS", "1")
+    enc = embed.Encoder("fast")
+    one = enc.encode(texts)
+    assert enc._fast.session.get_session_options().intra_op_num_threads == 1
+    monkeypatch.setenv("HOPPER_ENCODER_THREADS", "2")
+    two = enc.encode(texts)
+    assert enc._fast.session.get_session_options().intra_op_num_threads == 2
+    np.testing.assert_allclose(one, two, atol=1e-6)
