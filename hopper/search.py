@@ -215,8 +215,10 @@ def weigh_by_scorer(policy: pol.Policy, graph: Graph, start: int, qrel: int, sco
     an asked relation the policy does not know.  An entity the scorer has no row for (added
     after training) gets the mean probability of the others."""
     weight = float(policy.settings.get("scorer_weight", 0.0))
+    if weight <= 0 or qrel < 0 or not scores or "S_ent" not in policy.params:
+        return scores
     rows = _entity_map(policy, graph, "scorer_entities")
-    if weight <= 0 or rows is None or qrel < 0 or not scores or "S_ent" not in policy.params:
+    if rows is None:
         return scores
     from .scorer import Scorer
 

@@ -326,7 +326,8 @@ def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam:
                 log=None) -> None:
     """Keep the reward scorer in ``policy`` and set the power its probability weighs completion
     answers with (``hopper.search.weigh_by_scorer``): the weight in SCORER_WEIGHTS with the best
-    validation Hits@1 (then MRR; the smaller weight on a tie, 0 = the beam scores alone)."""
+    validation Hits@1 (then MRR; the smaller weight on a tie, 0 = the beam scores alone).
+    With 0 the scorer is not kept (its arrays would only take room in the store)."""
     policy.params |= {"S_ent": scorer.ent, "S_rel": scorer.rel}
     policy.settings["scorer_entities"] = list(graph.entity_names)
     tried = []
@@ -336,6 +337,8 @@ def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam:
         tried.append((vh, vm, -w))
     best = max(tried)
     policy.settings["scorer_weight"] = -best[2]
+    if best[2] == 0:
+        del policy.params["S_ent"], policy.params["S_rel"], policy.settings["scorer_entities"]
     if log:
         log("scorer weight on validation Hits@1: " +
             ", ".join(f"{-w:g}: {h:.3f}" for h, _, w in tried) + f"; kept {-best[2]:g}")

@@ -225,3 +225,33 @@ def test_kept_scorer_weighs_completion_answers_by_complex_probability():
     policy.settings["scorer_weight"] = 2.0
     assert weigh_by_scorer(policy, g, e("d"), 0, dict(scores)) == scores  # unknown start
     assert weigh_by_scorer(policy, g, e("a"), -1, dict(scores)) == scores  # unknown relation
+
+
+def test_keep_scorer_picks_the_best_validated_power_and_drops_a_useless_scorer(monkeypatch):
+    """train.keep_scorer tries every power in SCORER_WEIGHTS on validation and keeps the best
+    Hits@1 (then MRR, then the smaller power); when 0 wins the scorer's arrays are not stored.
+    Validation is replaced by a table of scores per power (common practice for testing a
+    selection rule apart from what it selects on)."""
+    import numpy as np
+
+    from helpers import make_graph
+    from hopper import train as tr
+    from hopper.policy import Policy
+    from hopper.scorer import Scorer
+
+    g = make_graph([("a", "r", "b")])
+    scorer = Scorer(np.ones((2, 4)), np.ones((1, 4)))
+
+    def run(table):
+        monkeypatch.setattr(tr, "validate", lambda graph, policy, eps, beam:
+                            (*table[policy.settings["scorer_weight"]], []))
+        policy = Policy({}, {"relations": ["r"]})
+        tr.keep_scorer(g, policy, scorer, ["one episode"], 16)
+        return policy
+
+    base = {w: (0.5, 0.6) for w in tr.SCORER_WEIGHTS}
+    p = run(base | {2.0: (0.7, 0.7), 4.0: (0.7, 0.8), 8.0: (0.7, 0.8)})
+    assert p.settings["scorer_weight"] == 4.0 and "S_ent" in p.params  # MRR, then smaller power
+    p = run(base | {0.0: (0.6, 0.6)})
+    assert p.settings["scorer_weight"] == 0.0
+    assert "S_ent" not in p.params and "scorer_entities" not in p.settings
