@@ -16,7 +16,7 @@ import duckdb
 
 from .errors import InputError
 from .files import write_atomic
-from .pending import CHUNK, PendingVectors
+from .pending import CHUNK, PendingVectors, key_sql, text_key
 from .store import Store, first
 
 REQUIRED = ("subject", "relation", "object")
@@ -445,15 +445,6 @@ def _write_rejected(stage, paths: list[Path]) -> list[str]:
     return written
 
 
-def _vectors_table(ids, vectors, id_name: str):
-    import numpy as np
-    import pyarrow as pa
-
-    vectors = np.ascontiguousarray(vectors, dtype=np.float32)
-    return pa.table({id_name: pa.array(ids), "embedding": pa.FixedSizeListArray.from_arrays(
-        pa.array(vectors.reshape(-1)), vectors.shape[1] if vectors.ndim == 2 else 384)})
-
-
 def store_precision(con) -> str | None:
     """The encoder precision that made the store's vectors; None before its first load.
     Stores made before precisions were recorded hold fp32 vectors."""
@@ -530,7 +521,7 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
     if encoder is None:
         encoder = embed.Encoder("auto", precision=stored or embed.LOAD_PRECISION)
     precision = getattr(encoder, "precision", "fp32")
-    known_vectors: dict[str, object] = {}
+    accounted: set[str] = set()  # texts counted as embedded or reused by this load
     pending = PendingVectors(store.path, identity["weights_sha256"], precision)
 
     def new_items(con):
@@ -566,23 +557,26 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
                           ("SELECT name FROM new_entities", lambda t: t),
                           ("SELECT name FROM new_relations", lambda t: t.replace("_", " "))):
             texts += [make(r[0]) for r in stage.execute(sql).fetchall()]
+        if not texts:
+            return
         # Shortest first: a chunk holds texts of similar length, so its batches pad little.
-        todo = sorted({t for t in texts if t not in known_vectors}, key=lambda t: (len(t), t))
+        todo = sorted(set(texts), key=lambda t: (len(t), t))
+        # The saved chunks are the truth, not memory: vectors an interrupted run of this load
+        # saved are reused, and in the write transaction this also finds any chunk a load
+        # that committed in between took away.  The rest is embedded in chunks, each saved
+        # beside the store as soon as it is done (see hopper/pending.py).
+        keys = [text_key(t) for t in todo]
+        saved = pending.keys(set(keys))
+        report.reused += sum(1 for t, k in zip(todo, keys) if k in saved and t not in accounted)
+        accounted.update(todo)
+        todo = [t for t, k in zip(todo, keys) if k not in saved]
         if not todo:
             return
-        # Vectors an interrupted run of this load saved are reused; the rest is embedded in
-        # chunks, each saved beside the store as soon as it is done (see hopper/pending.py).
-        saved = pending.read(set(todo))
-        known_vectors.update(saved)
-        report.reused += len(saved)
-        todo = [t for t in todo if t not in saved]
         bar = _progress_bar(progress, len(todo))
         try:
             for a in range(0, len(todo), CHUNK):
                 chunk = todo[a:a + CHUNK]
-                vecs = encoder.encode(chunk)
-                pending.save(chunk, vecs)
-                known_vectors.update(zip(chunk, vecs))
+                pending.save(chunk, encoder.encode(chunk))
                 report.embedded += len(chunk)
                 if bar is not None:
                     bar.update(len(chunk))
@@ -596,13 +590,14 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
             new_items(con)
     else:
         new_items(None)
-    embed_missing()
-
-    # Phase B: one short write transaction; recheck what is new in case another load landed.
     created = not store.exists()
     try:
-        _write(store, stage, report, identity, precision, new_items, embed_missing, known_vectors)
+        embed_missing()
+        # Phase B: one short write transaction; recheck what is new in case another load landed.
+        _write(store, stage, report, identity, precision, new_items, embed_missing, pending)
     except BaseException:
+        if not pending.resumable:
+            pending.clear()  # a private folder: nothing can resume from it
         if created:  # the store did not exist before this command: leave no empty file behind
             for p in (store.path, *(Path(str(store.path) + x) for x in (".wal", ".gate", ".lock"))):
                 try:
@@ -610,7 +605,6 @@ def load(store: Store, files, skip_invalid: bool = False, progress: bool | None 
                 except OSError:
                     pass
         raise
-    pending.clear()  # committed: the vectors are in the store now
     return report
 
 
@@ -624,67 +618,71 @@ def _progress_bar(progress: bool, total: int):
     return tqdm(total=total, desc="embedding", unit="text", file=sys.stderr)
 
 
-def _write(store, stage, report, identity, precision, new_items, embed_missing, known_vectors):
-    """Phase B of a load: one write transaction with everything new."""
-    import numpy as np
+LOAD_MEMORY_LIMIT = "1GB"  # DuckDB's buffers during a load's write transaction
 
-    with store.transaction() as con:
+
+def _write(store, stage, report, identity, precision, new_items, embed_missing, pending):
+    """Phase B of a load: one write transaction with everything new.  The vectors come from
+    the pending chunks on disk, joined to the new rows by text key inside DuckDB (never
+    through Python), and DuckDB's memory is capped, so a load's memory stays bounded."""
+    # committed: the vectors are in the store; their chunks go while the lock is still held,
+    # so a load waiting for it never lists a chunk that then vanishes
+    with store.transaction(after_commit=pending.clear) as con:
+        # DuckDB holds a transaction's new rows in memory up to its limit (80% of RAM by
+        # default), then spills to STORE.tmp: a load stays near 3 GB at a million facts.
+        con.execute(f"SET memory_limit = '{LOAD_MEMORY_LIMIT}'")
         check_model(con, identity, store.path, precision)
         new_items(con)
         embed_missing()
-        fact_rows = stage.execute("SELECT text FROM new_facts").fetchall()
-        ent_rows = stage.execute("SELECT name FROM new_entities").fetchall()
-        rel_rows = stage.execute("SELECT name FROM new_relations").fetchall()
         e0, r0, f0, l0 = first(con.execute(
             "SELECT coalesce((SELECT max(entity_id) FROM entities), 0), "
             "coalesce((SELECT max(relation_id) FROM relations), 0), "
             "coalesce((SELECT max(fact_id) FROM facts), 0), "
             "coalesce((SELECT max(load_id) FROM loads), 0)"))
         load_id = l0 + 1
-        if ent_rows:
-            vec = np.stack([known_vectors[r[0]] for r in ent_rows])
-            tab = _vectors_table(np.arange(e0 + 1, e0 + 1 + len(ent_rows)), vec, "entity_id")
-            names = [r[0] for r in ent_rows]
-            import pyarrow as pa
-            tab = tab.append_column("name", pa.array(names, pa.string()))
-            con.register("t_ent", tab)
-            con.execute("INSERT INTO entities (entity_id, name, embedding) "
-                        "SELECT entity_id, name, embedding FROM t_ent")
-            con.unregister("t_ent")
-        if rel_rows:
-            import pyarrow as pa
-            vec = np.stack([known_vectors[r[0].replace("_", " ")] for r in rel_rows])
-            tab = _vectors_table(np.arange(r0 + 1, r0 + 1 + len(rel_rows)), vec, "relation_id")
-            tab = tab.append_column("name", pa.array([r[0] for r in rel_rows], pa.string()))
-            con.register("t_rel", tab)
-            con.execute("INSERT INTO relations (relation_id, name, embedding) "
-                        "SELECT relation_id, name, embedding FROM t_rel")
-            con.unregister("t_rel")
-        if fact_rows:
-            nf = stage.sql("SELECT subject, relation, object, text, source, source_id, "
-                               "content_hash FROM new_facts").to_arrow_table()
+        vectors = pending.sql_source(con)
+        n_ent = n_rel = 0
+        for table, id_col, first_id, sql, text in (
+                ("entities", "entity_id", e0, "SELECT name FROM new_entities ORDER BY k", "name"),
+                ("relations", "relation_id", r0, "SELECT name FROM new_relations ORDER BY k",
+                 "replace(name, '_', ' ')")):
+            # new ids in first-seen order; the key is that of the embedded text
+            rows = stage.sql(f"SELECT {first_id} + row_number() OVER () AS id, name, "
+                             f"{key_sql(text)} AS key FROM ({sql})").to_arrow_table()
+            if not len(rows):
+                continue
+            con.register("t_new_names", rows)
+            con.execute(f"INSERT INTO {table} ({id_col}, name, embedding) SELECT t.id, t.name, "
+                        f"v.embedding FROM t_new_names t JOIN {vectors} v USING (key)")
+            con.unregister("t_new_names")
+            _require_all(con, f"SELECT count(*) FROM {table} WHERE {id_col} > ?", first_id,
+                         len(rows), table)
+            n_ent, n_rel = (len(rows), n_rel) if table == "entities" else (n_ent, len(rows))
+        n_facts = first(stage.execute("SELECT count(*) FROM new_facts"))[0]
+        if n_facts:
+            nf = stage.sql("SELECT row_number() OVER (ORDER BY file_no, line) AS ord, subject, "
+                           "relation, object, text, source, source_id, content_hash FROM new_facts"
+                           ).to_arrow_table()
             con.register("t_new", nf)
             con.execute("""
-                INSERT INTO facts SELECT ? + row_number() OVER () AS fact_id,
+                INSERT INTO facts SELECT ? + n.ord AS fact_id,
                     s.entity_id, r.relation_id, o.entity_id, n.subject, n.relation, n.object,
                     n.text, n.source, n.source_id, n.content_hash, ?, now()::TIMESTAMP
                 FROM t_new n JOIN entities s ON s.name = n.subject
                 JOIN relations r ON r.name = n.relation JOIN entities o ON o.name = n.object""",
                         [f0, load_id])
             con.unregister("t_new")
-            for a in range(0, len(fact_rows), 65536):  # in slices: one copy of all vectors is enough
-                part = fact_rows[a:a + 65536]
-                vec = np.stack([known_vectors[r[0]] for r in part])
-                tab = _vectors_table(np.arange(f0 + 1 + a, f0 + 1 + a + len(part)), vec, "fact_id")
-                con.register("t_vec", tab)
-                con.execute("INSERT INTO fact_vectors SELECT fact_id, embedding FROM t_vec")
-                con.unregister("t_vec")
-            added = first(con.execute("SELECT count(*) FROM facts WHERE load_id = ?", [load_id]))[0]
-            if added != len(fact_rows):  # the joins above must match every new fact
-                raise RuntimeError(f"internal: {added} of {len(fact_rows)} facts stored")
-        report.facts_added = len(fact_rows)
-        report.entities_added = len(ent_rows)
-        report.relations_added = len(rel_rows)
+            del nf
+            _require_all(con, "SELECT count(*) FROM facts WHERE load_id = ?", load_id, n_facts,
+                         "facts")
+            con.execute(f"INSERT INTO fact_vectors SELECT f.fact_id, v.embedding FROM facts f "
+                        f"JOIN {vectors} v ON v.key = {key_sql('f.text')} WHERE f.load_id = ?",
+                        [load_id])
+            _require_all(con, "SELECT count(*) FROM fact_vectors WHERE fact_id > ?", f0, n_facts,
+                         "fact vectors")
+        report.facts_added = n_facts
+        report.entities_added = n_ent
+        report.relations_added = n_rel
         report.duplicates = report.rows_read - report.rejected - report.facts_added
         con.execute("INSERT INTO loads VALUES (?, now()::TIMESTAMP, ?, ?, ?, ?, ?)",
                     [load_id, report.files, report.rows_read, report.facts_added,
@@ -694,7 +692,13 @@ def _write(store, stage, report, identity, precision, new_items, embed_missing, 
             Store.set_meta(con, "model_dim", str(identity["dim"]))
             Store.set_meta(con, "model_sha256", identity["weights_sha256"])
             Store.set_meta(con, "model_precision", precision)
-        if fact_rows:
+        if n_facts:
             version = int(Store.get_meta(con, "facts_version", "0")) + 1
             Store.set_meta(con, "facts_version", str(version))
 
+
+def _require_all(con, count_sql: str, arg, want: int, what: str) -> None:
+    """The joins of ``_write`` must match every new row (a missing vector would drop one)."""
+    got = first(con.execute(count_sql, [arg]))[0]
+    if got != want:
+        raise RuntimeError(f"internal: {got} of {want} {what} stored")

@@ -261,8 +261,9 @@ class Store:
                 delay = min(delay * 2, 0.5)
 
     @contextlib.contextmanager
-    def transaction(self, timeout: float | None = None):
-        """A write connection inside one transaction: all of it lands, or none of it."""
+    def transaction(self, timeout: float | None = None, after_commit=None):
+        """A write connection inside one transaction: all of it lands, or none of it.
+        ``after_commit()`` runs once it has landed, still under the write lock."""
         with self.connect(write=True, timeout=timeout) as con:
             con.execute("BEGIN TRANSACTION")
             try:
@@ -271,6 +272,8 @@ class Store:
                 con.execute("ROLLBACK")
                 raise
             con.execute("COMMIT")
+            if after_commit is not None:
+                after_commit()
 
     @staticmethod
     def _has_schema(con) -> bool:

@@ -160,8 +160,8 @@ MARK_TIMES = cli_driver("""
     real = store.Store.transaction
 
     @contextlib.contextmanager
-    def transaction(self, timeout=None):
-        with real(self, timeout=timeout) as con:
+    def transaction(self, timeout=None, **kw):
+        with real(self, timeout=timeout, **kw) as con:
             mark("write-begin")
             yield con
             mark("write-end")  # still inside the lock: COMMIT comes after

@@ -24,7 +24,7 @@ DIE_BEFORE_COMMIT = cli_driver("""
     from hopper import store
 
     @contextlib.contextmanager
-    def transaction(self, timeout=None):
+    def transaction(self, timeout=None, **kw):
         with self.connect(write=True, timeout=timeout) as con:
             con.execute("BEGIN TRANSACTION")
             yield con
@@ -50,8 +50,8 @@ PAUSE_IN_WRITE = cli_driver("""
             sys.stdin.read()
 
     @contextlib.contextmanager
-    def transaction(self, timeout=None):
-        with real(self, timeout=timeout) as con:
+    def transaction(self, timeout=None, **kw):
+        with real(self, timeout=timeout, **kw) as con:
             pause("begin")
             yield con
             pause("commit")

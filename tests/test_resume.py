@@ -1,6 +1,8 @@
 """An interrupted load leaves the store as it was and its re-run embeds only what is missing."""
 from __future__ import annotations
 
+import tempfile
+
 import duckdb
 import numpy as np
 import pytest
@@ -10,7 +12,7 @@ from helpers import write_csv
 from hopper import embed
 from hopper.api import Hopper
 from hopper.store import Store
-from hopper.pending import PendingVectors, text_key
+from hopper.pending import PendingVectors, key_sql, text_key
 
 
 def write_facts(path, n):
@@ -94,10 +96,69 @@ def test_pending_chunks_ignore_damage_and_other_texts(tmp_path):
     p = PendingVectors(tmp_path / "s.duckdb", "ab" * 32)
     v = np.eye(3, 384, dtype=np.float32)
     p.save(["a", "b", "c"], v)
-    (p.folder / "chunk-broken-1.npz").write_bytes(b"not a zip")
-    got = p.read({"b", "c", "zzz"})
-    assert sorted(got) == ["b", "c"]
-    np.testing.assert_array_equal(got["c"], v[2])
+    (p.folder / "chunk-broken-1.parquet").write_bytes(b"not parquet")
+    assert p.keys({text_key(t) for t in ("b", "c", "zzz")}) == {text_key("b"), text_key("c")}
+    con = duckdb.connect()
+    got = dict(con.execute(f"SELECT key, embedding FROM {p.sql_source(con)}").fetchall())
+    np.testing.assert_array_equal(np.array(got[text_key("c")], np.float32), v[2])
     assert text_key("a") != text_key("a ")
     p.clear()
-    assert p.read({"a"}) == {}
+    assert p.keys({text_key("a")}) == set()
+
+
+def test_text_key_is_sha256_in_python_and_in_duckdb():
+    # SHA-256("abc") from FIPS 180-2, appendix B.1 (the standard's own worked example)
+    assert text_key("abc") == "ba7816bf8f01cfea414140de5dae2223"
+    con = duckdb.connect()
+    for text in ("abc", "Café Ünïcode", "☃ snow · 雪", "tab\there", ""):
+        assert con.execute(f"SELECT {key_sql('?')}", [text]).fetchall()[0][0] == text_key(text)
+
+
+def test_a_text_saved_twice_gives_one_vector(tmp_path):
+    # two loads of one store running at once may both save a text
+    p = PendingVectors(tmp_path / "s.duckdb", "ab" * 32)
+    v = np.eye(2, 384, dtype=np.float32)
+    p.save(["a", "b"], v)
+    p.save(["b"], v[1:])
+    con = duckdb.connect()
+    rows = con.execute(f"SELECT key FROM {p.sql_source(con)} ORDER BY key").fetchall()
+    assert sorted(r[0] for r in rows) == sorted([text_key("a"), text_key("b")])
+
+
+def test_load_works_where_the_pending_folder_cannot_be_made(tmp_path, monkeypatch):
+    private = tmp_path / "tmp"
+    private.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(private))  # where the private folder goes
+    store = tmp_path / "s.duckdb"
+    (tmp_path / "s.duckdb.cache").write_text("a file where the folder would go")
+    f = write_facts(tmp_path / "facts.csv", 30)
+    report = run_load(store, f, CountingEncoder())
+    assert report["facts_added"] == 30
+    texts, vecs = stored_vectors(store)
+    clean = embed.Encoder("auto").encode(texts)
+    assert np.min(np.sum(vecs * clean, axis=1)) > 0.9999
+    assert not list(private.iterdir())  # the private folder was used, and removed after
+
+
+def test_chunks_taken_away_before_the_write_are_embedded_again_under_the_lock(tmp_path, monkeypatch):
+    # A load that commits while this one waits for the lock removes the chunks it used, which
+    # may hold texts this one needs: the write transaction checks the chunks on disk again.
+    store = tmp_path / "s.duckdb"
+    f = write_facts(tmp_path / "facts.csv", 30)
+    real_write = load_mod._write
+
+    def write_after_losing_the_chunks(store_, stage, report, identity, precision, new_items,
+                                      embed_missing, pending):
+        for chunk in pending.folder.glob("chunk-*.parquet"):
+            chunk.unlink()
+        return real_write(store_, stage, report, identity, precision, new_items, embed_missing,
+                          pending)
+
+    monkeypatch.setattr(load_mod, "_write", write_after_losing_the_chunks)
+    enc = CountingEncoder()
+    report = run_load(store, f, enc)
+    total = 30 + 37 + 1  # facts, entities (30 parts, 7 makers), relation
+    assert report["facts_added"] == 30 and len(enc.texts) == 2 * total
+    texts, vecs = stored_vectors(store)
+    clean = embed.Encoder("auto").encode(texts)
+    assert np.min(np.sum(vecs * clean, axis=1)) > 0.9999
