@@ -83,12 +83,10 @@ REL_SOURCES = {
 
 # --------------------------------------------------------------------------
 # Question chains: (start type, relations, seen templates, new templates for the test split,
-# new templates for the valid split, more training templates).  Template index = position in
-# seen + new + valid-new + more; "seen" ones appear in every split, the test's new ones only
-# in test, the valid split's new ones only in valid (so settings and early stopping can be
-# judged on wordings never trained on without looking at the test's), the "more" ones only
-# in train (added later and drawn by a generator of their own, so the valid and test files
-# stayed byte for byte; they use none of the valid or test new wordings' words).
+# new templates for the valid split).  Template index = position in seen + new + valid-new;
+# "seen" ones appear in every split, the test's new ones only in test, the valid split's new
+# ones only in valid (so settings and early stopping can be judged on wordings never
+# trained on without looking at the test's).
 # --------------------------------------------------------------------------
 CHAINS = [
     ("part", ["made by"],
@@ -101,11 +99,7 @@ CHAINS = [
      ["Name the manufacturer responsible for producing component {e}.",
       "What firm fabricates the item coded {e}?"],
      ["Whose plant turns out part {e}?",
-      "Which enterprise produces the part labelled {e}?"],
-     ["Who supplies part {e}?",
-      "Which provider delivers part {e}?",
-      "Part {e} comes from which supplier?",
-      "Who is the source of part {e}?"]),
+      "Which enterprise produces the part labelled {e}?"]),
     ("supplier", ["based in"],
      ["In which city is {e} based?",
       "Where is {e} based?",
@@ -116,11 +110,7 @@ CHAINS = [
      ["What town hosts the headquarters of {e}?",
       "{e} keeps its head office in what municipality?"],
      ["From what urban centre does {e} run its business?",
-      "Where does {e} have its main seat?"],
-     ["Which city is {e} in?",
-      "Where can {e} be found?",
-      "Where is the base of {e}?",
-      "In what city are the premises of {e}?"]),
+      "Where does {e} have its main seat?"]),
     ("supplier", ["certified by"],
      ["Who certified {e}?",
       "Which auditor certified {e}?",
@@ -131,11 +121,7 @@ CHAINS = [
      ["Which assessment organisation vouches for the quality system of {e}?",
       "Name the inspection body that accredits {e}."],
      ["Which agency has granted {e} its certification?",
-      "Whose seal of approval does {e} carry?"],
-     ["Which body gave {e} its certificate?",
-      "Who checked {e} for compliance?",
-      "From whom did {e} receive its certificate?",
-      "Who is the auditor of {e}?"]),
+      "Whose seal of approval does {e} carry?"]),
     ("person", ["reports to"],
      ["Who does {e} report to?",
       "To whom does {e} report?",
@@ -146,11 +132,7 @@ CHAINS = [
      ["Name the direct supervisor of {e}.",
       "Who is the line boss of {e}?"],
      ["Whom does {e} take orders from?",
-      "Who sits above {e} in the hierarchy?"],
-     ["To whom is {e} accountable?",
-      "Who is in charge of {e}?",
-      "Who does {e} work for?",
-      "Who gives {e} instructions?"]),
+      "Who sits above {e} in the hierarchy?"]),
     ("part", ["made by", "based in"],
      ["In which city is the maker of part {e} based?",
       "Where is the company that makes part {e} based?",
@@ -161,11 +143,7 @@ CHAINS = [
      ["The manufacturer of component {e} has its headquarters in what town?",
       "Name the home city of the firm that produces item {e}."],
      ["Where does the enterprise producing part {e} have its main seat?",
-      "From what urban centre does the producer of part {e} run its business?"],
-     ["Which city is the supplier of part {e} in?",
-      "Where can the provider of part {e} be found?",
-      "Where is the base of the company supplying part {e}?",
-      "In what city are the premises of the source of part {e}?"]),
+      "From what urban centre does the producer of part {e} run its business?"]),
     ("part", ["made by", "certified by"],
      ["Who certified the maker of part {e}?",
       "Which auditor certified the company that makes part {e}?",
@@ -176,11 +154,7 @@ CHAINS = [
      ["Which assessment organisation accredits the manufacturer of component {e}?",
       "Name the inspection body vouching for whoever fabricates item {e}."],
      ["Which agency granted certification to the producer of part {e}?",
-      "Whose seal of approval does the enterprise behind part {e} carry?"],
-     ["Which body gave the supplier of part {e} its certificate?",
-      "Who checked the provider of part {e} for compliance?",
-      "From whom did the company supplying part {e} receive its certificate?",
-      "Who is the auditor of the source of part {e}?"]),
+      "Whose seal of approval does the enterprise behind part {e} carry?"]),
     ("supplier", ["based in", "located in"],
      ["In which country is {e} based?",
       "Which country is the city where {e} is based located in?",
@@ -191,11 +165,7 @@ CHAINS = [
      ["What nation hosts the headquarters of {e}?",
       "Name the nation where {e} keeps its head office."],
      ["In what jurisdiction does {e} have its main seat?",
-      "Which land is home to {e}?"],
-     ["Which country is {e} in?",
-      "In which country can {e} be found?",
-      "What is the country of the base of {e}?",
-      "In what country are the premises of {e}?"]),
+      "Which land is home to {e}?"]),
     ("assembly", ["contains part", "made by"],
      ["Who makes the parts in assembly {e}?",
       "Which suppliers make the parts contained in assembly {e}?",
@@ -206,11 +176,7 @@ CHAINS = [
      ["Which manufacturers produce the components that go into unit {e}?",
       "Name the firms fabricating the pieces of module {e}."],
      ["Which enterprises produce what assembly {e} is built from?",
-      "Whose plants turn out the parts of assembly {e}?"],
-     ["Who supplies the parts of assembly {e}?",
-      "Which providers deliver the parts in assembly {e}?",
-      "The parts of assembly {e} come from which suppliers?",
-      "Who are the sources of the parts that assembly {e} contains?"]),
+      "Whose plants turn out the parts of assembly {e}?"]),
     ("part", ["made by", "based in", "located in"],
      ["In which country is the maker of part {e} based?",
       "Which country is the city where the maker of part {e} is based located in?",
@@ -221,11 +187,7 @@ CHAINS = [
      ["What nation hosts the headquarters of the manufacturer of component {e}?",
       "Name the nation in which the firm fabricating item {e} keeps its head office."],
      ["In what jurisdiction does the producer of part {e} have its main seat?",
-      "Which land is home to the enterprise producing part {e}?"],
-     ["Which country is the supplier of part {e} in?",
-      "In which country can the provider of part {e} be found?",
-      "What is the country of the base of the company supplying part {e}?",
-      "In what country are the premises of the source of part {e}?"]),
+      "Which land is home to the enterprise producing part {e}?"]),
     ("assembly", ["contains part", "made by", "based in"],
      ["In which cities are the makers of the parts in assembly {e} based?",
       "Where are the suppliers that make the parts of assembly {e} based?",
@@ -236,11 +198,7 @@ CHAINS = [
      ["In what towns are the manufacturers of the components of unit {e} headquartered?",
       "Name the home cities of the firms that fabricate pieces going into module {e}."],
      ["Where do the producers of the parts of assembly {e} have their main seats?",
-      "From what urban centres do the enterprises behind the parts of assembly {e} run their business?"],
-     ["Which cities are the suppliers of the parts of assembly {e} in?",
-      "Where can the providers of the parts in assembly {e} be found?",
-      "Where are the bases of the companies supplying the parts of assembly {e}?",
-      "In what cities are the premises of the sources of the parts that assembly {e} contains?"]),
+      "From what urban centres do the enterprises behind the parts of assembly {e} run their business?"]),
     ("part", ["made by", "managed by", "reports to"],
      ["Who does the manager of the maker of part {e} report to?",
       "The company that makes part {e} is managed by someone who reports to whom?",
@@ -251,11 +209,7 @@ CHAINS = [
      ["Name the direct supervisor of the account handler for the manufacturer of component {e}.",
       "Who is the line boss of the contact overseeing the firm that fabricates item {e}?"],
      ["Whom does the relationship owner for the producer of part {e} take orders from?",
-      "Who sits above the person looking after the enterprise behind part {e}?"],
-     ["To whom is the manager of the supplier of part {e} accountable?",
-      "Who is in charge of the person managing the provider of part {e}?",
-      "Who does the manager of the company supplying part {e} work for?",
-      "Who gives instructions to the manager of the source of part {e}?"]),
+      "Who sits above the person looking after the enterprise behind part {e}?"]),
     ("supplier", ["managed by", "works in", "located in"],
      ["In which country does the manager of {e} work?",
       "The person who manages {e} works in a city in which country?",
@@ -266,11 +220,7 @@ CHAINS = [
      ["What nation is the account handler for {e} employed in?",
       "Name the nation where the contact overseeing {e} has an office."],
      ["In what jurisdiction does the relationship owner for {e} have their desk?",
-      "Which land is home to the workplace of the person looking after {e}?"],
-     ["Which country does the person in charge of {e} work in?",
-      "What is the country of the city where the manager of {e} works?",
-      "The manager of {e} works in which country?",
-      "In which country can the manager of {e} be found at work?"]),
+      "Which land is home to the workplace of the person looking after {e}?"]),
 ]
 
 # --------------------------------------------------------------------------
@@ -548,7 +498,7 @@ def chain_answers(con, rels: list[str]) -> dict[str, list[str]]:
     return out
 
 
-def make_questions(con, starts, rng: random.Random, wording_rng: random.Random):
+def make_questions(con, starts, rng: random.Random):
     # partition start entities of every type into train / valid / test pools
     pool: dict[str, str] = {}
     for typ in sorted(starts):
@@ -561,7 +511,7 @@ def make_questions(con, starts, rng: random.Random, wording_rng: random.Random):
 
     splits: dict[str, list[dict]] = {k: [] for k in SPLIT_SIZES}
     n_chains = len(CHAINS)
-    for ci, (typ, rels, seen, new, valid_new, more) in enumerate(CHAINS):
+    for ci, (typ, rels, seen, new, valid_new) in enumerate(CHAINS):
         answers = chain_answers(con, rels)
         for split, total in SPLIT_SIZES.items():
             want = total // n_chains + (1 if ci < total % n_chains else 0)
@@ -582,11 +532,7 @@ def make_questions(con, starts, rng: random.Random, wording_rng: random.Random):
                         #                                   splits as they were before)
                         t = len(seen) + len(new) + (k // 2) % len(valid_new)
                         wording = "new"
-                    if split == "train":  # (its own generator: the main one's stream is kept)
-                        pick = wording_rng.randrange(len(seen) + len(more))
-                        if pick >= len(seen):
-                            t = len(new) + len(valid_new) + pick
-                text = (seen + new + valid_new + more)[t].format(e=e)
+                text = (seen + new + valid_new)[t].format(e=e)
                 text = text[0].upper() + text[1:]
                 splits[split].append({
                     "question": text, "answer": answers[e], "hops": len(rels),
@@ -677,7 +623,7 @@ def write_readme(path: Path, con, entities, splits, seed: int) -> None:
     ent_table += f"\n- total: {sum(len(v) for v in entities.values())} unique names"
     rel_table = "\n".join(f"| `{r}` | {REL_TYPES[r]} | {c} |" for r, c in rel_counts.items())
     chain_lines = ["| hops | chain | start | example (seen) | example (new) |", "|---|---|---|---|---|"]
-    for typ, rels, seen, new, *_ in CHAINS:
+    for typ, rels, seen, new, _ in CHAINS:
         chain_lines.append(f"| {len(rels)} | `{'>'.join(rels)}` | {typ} | "
                            f"{seen[0].format(e='X')} | {new[0].format(e='X')} |")
     sizes = ", ".join(f"{k} {len(v)}" for k, v in splits.items())
@@ -702,7 +648,7 @@ def main(argv=None) -> None:
     con = duckdb.connect()
     con.execute("CREATE TABLE facts AS SELECT * FROM read_csv(?, header=true, "
                 "all_varchar=true)", [str(facts_path)])
-    splits = make_questions(con, starts, rng, random.Random(args.seed + 1))
+    splits = make_questions(con, starts, rng)
     for split, qs in splits.items():
         with open(args.out / f"questions_{split}.jsonl", "w", encoding="utf-8",
                   newline="\n") as f:
