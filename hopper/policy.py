@@ -8,13 +8,9 @@ probabilities.
     question   x = [(q - q_mean) q_proj,    (q: the question with names masked, whitened by PCA
                                             on the training questions, so wordings that differ
                                             in a few words are far apart; fixed, not trained)
-                    (b - w_mean) w_scale,   (b: soft counts of the training questions' words in
+                    (b - w_mean) w_scale]   (b: soft counts of the training questions' words in
                                             it; a word never seen in training counts for its
                                             nearest training words, see ``word_bag``)
-                    (m - t_mean) t_scale]   (m: the question's share of each training wording
-                                            but its own, by the raw sentence cosine, see
-                                            ``wording_bag``; a new wording lands on the nearest
-                                            ones, which whitening would not show)
     state      z_t = tanh(x W_q + h_t W_h + e_t W_e + Q[r_q] + b_hop[t] + N_z[n_t] + N_s[n_0])
                                                                           (e_t, n_t: where it
                                                                            stands, n_0: started;
@@ -59,7 +55,6 @@ NEG = -1e9  # the score of a padded (absent) candidate
 PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden width
     "q_mean": ("D",), "q_proj": ("D", "K"),
     "w_vocab": ("V", "D"), "w_mean": ("V",), "w_scale": ("V",),
-    "t_vocab": ("M", "D"), "t_mean": ("M",), "t_scale": ("M",),
     "W_q": ("X", "H"), "W_h": ("H", "H"), "W_e": ("D", "H"), "Q": ("R1", "H"), "b_hop": ("T", "H"),
     "W_v": ("D", "H"), "W_u": (2, "D", "H"), "E": ("R2", "H"), "b_c": ("H",),
     "w_f": (N_CHEAP,), "w_stop": ("H",), "u_stop": ("T", "X"), "w_g": (N_STOP,), "b_stop": (1,),
@@ -70,11 +65,9 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
 
 
 TEXT_INPUTS = ("W_v", "W_u", "W_e")  # the weights that read unit-length sentence vectors
-FIXED = ("q_mean", "q_proj", "w_vocab", "w_mean", "w_scale",  # set from the training questions
-         "t_vocab", "t_mean", "t_scale")
+FIXED = ("q_mean", "q_proj", "w_vocab", "w_mean", "w_scale")  # set from the training questions
 WORD_TAU = 0.05   # temperature of a question word's soft match to the training words
 WORD_NULL = 0.5   # a word matching no training word better than this cosine counts for none
-SAME_WORDING = 0.999  # a training wording this close to the question is its own (left out)
 VIEWS = ("sentence", "words", "both")  # what of the question the policy reads
 
 
@@ -173,42 +166,6 @@ def word_bag(P: dict, word_vecs) -> np.ndarray:
     return w[:, :-1].sum(0).astype(np.float32)
 
 
-def wording_bag(P: dict, qstate) -> np.ndarray:
-    """The question's share of each training wording (rows of ``t_vocab``) but its own: [M].
-
-    Like ``word_bag`` for a whole sentence: softmax(cosine / WORD_TAU) over the training
-    questions' distinct wordings (names masked) with a "none" option at WORD_NULL, leaving out
-    a wording at cosine SAME_WORDING or more (the question's own).  So a training question
-    reads as its nearest other wordings, as a wording never seen in training does: on the
-    demo's valid split the nearest training wording of 20 of 24 new wordings is one of the
-    same chain ("whom does the relationship owner for ... take orders from" -> "who does the
-    manager of ... report to"), where their words match none.
-    """
-    vocab = P.get("t_vocab")
-    if vocab is None or vocab.shape[0] == 0:
-        return np.zeros(0, np.float32)
-    cos = vocab @ np.asarray(qstate, np.float32)
-    logits = np.append(np.where(cos >= SAME_WORDING, -np.inf, cos), WORD_NULL) / WORD_TAU
-    w = np.exp(logits - logits.max())
-    return (w[:-1] / w.sum()).astype(np.float32)
-
-
-def wording_basis(qstates: list, max_wordings: int = 512, min_count: int = 2):
-    """The training wordings (distinct masked question vectors asked at least ``min_count``
-    times, the most frequent ``max_wordings``) and the scaling of ``wording_bag``:
-    (t_vocab [M, D], t_mean [M], t_scale [M])."""
-    X = np.asarray(qstates, np.float32).reshape(len(qstates), -1)
-    rows, first, counts = np.unique(X, axis=0, return_index=True, return_counts=True)
-    keep = [i for i in sorted(range(len(rows)), key=lambda i: (-counts[i], first[i]))
-            if counts[i] >= min_count][:max_wordings]
-    P = {"t_vocab": rows[keep].astype(np.float32)}
-    bags = np.stack([wording_bag(P, q) for q in X]) if len(keep) and len(X) else \
-        np.zeros((len(X), len(keep)), np.float32)
-    mean = bags.mean(0) if len(bags) else np.zeros(len(keep))
-    scale = 1.0 / (bags.std(0) + 0.1) if len(bags) else np.ones(len(keep))
-    return P["t_vocab"], mean.astype(np.float32), scale.astype(np.float32)
-
-
 def word_basis(word_lists: list, word_vecs: list, max_words: int = 512, min_count: int = 2):
     """The training vocabulary and the scaling of its soft counts.
 
@@ -239,18 +196,15 @@ def question_features(P: dict, qstate, word_vecs) -> np.ndarray:
     x_s = (qstate - P["q_mean"]) @ P["q_proj"]
     x_w = (word_bag(P, word_vecs) - P["w_mean"]) * P["w_scale"] if "w_vocab" in P else \
         np.zeros(0, np.float32)
-    x_t = (wording_bag(P, qstate) - P["t_mean"]) * P["t_scale"] if "t_vocab" in P else \
-        np.zeros(0, np.float32)
-    return np.concatenate([x_s, x_w, x_t]).astype(np.float32)
+    return np.concatenate([x_s, x_w]).astype(np.float32)
 
 
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int,
-                basis=None, words=None, n_entities: int = 0, wordings=None) -> dict:
+                basis=None, words=None, n_entities: int = 0) -> dict:
     """Small random weights (scaled by fan-in), as float32 numpy arrays.
 
     ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they
-    are.  ``words`` is (w_vocab, w_mean, w_scale) from ``word_basis``; without it no words;
-    ``wordings`` (t_vocab, t_mean, t_scale) from ``wording_basis``; without it no wordings.
+    are.  ``words`` is (w_vocab, w_mean, w_scale) from ``word_basis``; without it no words.
     ``n_entities`` > 0 gives that many rows of learned entity vectors (zero at the start).
     """
     rng = np.random.default_rng(seed)
@@ -258,17 +212,12 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
                                                       np.eye(dim, dtype=np.float32))
     w_vocab, w_mean, w_scale = words if words is not None else (
         np.zeros((0, dim), np.float32), np.zeros(0, np.float32), np.zeros(0, np.float32))
-    t_vocab, t_mean, t_scale = wordings if wordings is not None else (
-        np.zeros((0, dim), np.float32), np.zeros(0, np.float32), np.zeros(0, np.float32))
     sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
              "R1": n_relations + 1, "K": q_proj.shape[1], "V": w_vocab.shape[0],
-             "M": t_vocab.shape[0], "X": q_proj.shape[1] + w_vocab.shape[0] + t_vocab.shape[0],
-             "N1": n_entities + 1}
+             "X": q_proj.shape[1] + w_vocab.shape[0], "N1": n_entities + 1}
     params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32),
               "w_vocab": np.asarray(w_vocab, np.float32), "w_mean": np.asarray(w_mean, np.float32),
-              "w_scale": np.asarray(w_scale, np.float32),
-              "t_vocab": np.asarray(t_vocab, np.float32), "t_mean": np.asarray(t_mean, np.float32),
-              "t_scale": np.asarray(t_scale, np.float32)}
+              "w_scale": np.asarray(w_scale, np.float32)}
     for name, shape in PARAM_SHAPES.items():
         if name in FIXED:
             continue
@@ -458,10 +407,6 @@ class Policy:
             dim = params["q_proj"].shape[0]
             params |= {"w_vocab": np.zeros((0, dim), np.float32),
                        "w_mean": np.zeros(0, np.float32), "w_scale": np.zeros(0, np.float32)}
-        if "t_vocab" not in params and "q_proj" in params:  # made before policies read wordings
-            dim = params["q_proj"].shape[0]
-            params |= {"t_vocab": np.zeros((0, dim), np.float32),
-                       "t_mean": np.zeros(0, np.float32), "t_scale": np.zeros(0, np.float32)}
         if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
             hid = params["W_h"].shape[0]
             params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}

@@ -51,9 +51,6 @@ class TrainSettings:
     time_budget: float = 0.0    # seconds; 0 = no limit
     sentence_dropout: float = 0.5  # chance a question's sentence view is hidden in a rollout batch
     question_view: str = "both"  # the policy reads the question's sentence vector, its words, or both
-    wording_view: bool = False  # and its share of each training wording (policy.wording_bag)
-    wording_only: float = 0.0   # chance a question shown without its sentence view is also shown
-    #                             without its words, so the policy learns the wording view alone
     entity_embed: bool = False  # learn a vector per entity (fixed entity sets, e.g. UMLS); off
     #                             keeps the policy entity-free, so it carries to unseen entities
     reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
@@ -79,7 +76,6 @@ class TrainSettings:
             "beam": 1 <= self.beam <= 256, "adj_cap": 2 <= self.adj_cap <= 4096, "seed": self.seed >= 0, "time_budget": self.time_budget >= 0,
             "question_view": self.question_view in pol.VIEWS,
             "sentence_dropout": 0 <= self.sentence_dropout < 1,
-            "wording_only": 0 <= self.wording_only < 1,
             "reward_scorer": self.reward_scorer in ("none", "complex"),
             "scorer_epochs": self.scorer_epochs >= 1,
             "completion_episodes": self.completion_episodes in ("one-answer", "all-answers",
@@ -227,12 +223,9 @@ def _candidates_cached(graph: Graph, walker: Walker, ep: Episode, t: int, T: int
     return c
 
 
-def _drop_sentence(qx: dict, batch: list, k: int, p: float, rng, words: int = 0,
-                   p_words: float = 0.0) -> dict:
+def _drop_sentence(qx: dict, batch: list, k: int, p: float, rng) -> dict:
     """Hide the sentence view (the first k features) of some questions, so the policy also
-    learns to act on the word view alone (robust when the sentence view is unlike training);
-    of those, with chance ``p_words`` also the word view (the next ``words`` features), so it
-    learns to act on the wording view alone."""
+    learns to act on the word view alone (robust when the sentence view is unlike training)."""
     if p <= 0 or k == 0:
         return qx
     out = {}
@@ -241,8 +234,6 @@ def _drop_sentence(qx: dict, batch: list, k: int, p: float, rng, words: int = 0,
         if rng.random() < p:
             x = x.copy()
             x[:k] = 0.0
-            if p_words > 0 and rng.random() < p_words:
-                x[k:k + words] = 0.0
         out[id(ep)] = x
     return out
 
@@ -475,10 +466,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         if settings.question_view != "sentence":
             *words, vocabulary = pol.word_basis([e.words for e in questions],
                                                 [e.word_vecs for e in questions])
-        worded = [e.qstate for e in questions if e.qrel < 0]  # questions in words
-        wordings = pol.wording_basis(worded) if settings.wording_view and worded else None
         init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
-                               basis=basis, words=words, n_entities=n_ent, wordings=wordings)
+                               basis=basis, words=words, n_entities=n_ent)
     else:
         init = {k: resume_from[0][f"param.{k}"] for k in pol.PARAM_SHAPES}  # Adam's order
         vocabulary = list(resume_from[1]["vocabulary"])
@@ -545,9 +534,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
                 P, ops, graph, relmap, batch, settings.rollouts, settings.max_hops,
                 settings.action_dropout, gen, rng, cap=settings.adj_cap,
                 type_reward=shaping, qx=_drop_sentence(qx, batch, init["q_proj"].shape[1],
-                                                       settings.sentence_dropout, rng,
-                                                       init["w_vocab"].shape[0],
-                                                       settings.wording_only),
+                                                       settings.sentence_dropout, rng),
                 entmap=entmap, scorer=scorer)
             rewards = episode_rewards(correct, active, fetches, last, settings.fetch_cost)
             loss = reinforce_loss(logp, ent, rewards, active, settings.rollouts, settings.entropy,

@@ -123,26 +123,6 @@ def test_word_basis_keeps_words_seen_twice_and_scales_their_counts():
     assert np.allclose(x, (np.array([1.0, 1.0]) - mean) * scale, atol=1e-3)
 
 
-def test_wording_bag_leaves_out_the_question_own_wording_and_finds_the_nearest():
-    e = np.eye(6, dtype=np.float32)
-    a, b, c = e[0], (e[0] + e[1]) / np.sqrt(2), e[2]    # a and b: two wordings of one chain
-    asked = [a, a, b, b, c, c, e[3]]                    # e[3]: asked once, not kept
-    vocab, mean, scale = pol.wording_basis(asked)
-    assert np.allclose(vocab, np.stack([a, b, c]))      # by count, then first seen
-    P = {"t_vocab": vocab}
-    bag = pol.wording_bag(P, a)                         # b (cosine 0.71), not itself
-    assert bag[0] == 0.0 and bag[1] > 0.95 and bag[2] < 1e-3
-    assert np.allclose(pol.wording_bag(P, c), 0.0, atol=1e-3)  # nothing near: "none"
-    new = (3 * e[0] + e[1] + e[4]) / np.sqrt(11)        # a wording never trained: a is nearest
-    bag = pol.wording_bag(P, new)                       # shared by a (0.90) and b (0.85)
-    assert bag.argmax() == 0 and bag[:2].sum() > 0.99
-    assert np.allclose(mean, np.mean([pol.wording_bag(P, q) for q in asked], 0))
-    x = pol.question_features({"q_mean": np.zeros(6, np.float32),
-                               "q_proj": np.zeros((6, 0), np.float32),
-                               "t_vocab": vocab, "t_mean": mean, "t_scale": scale}, new, None)
-    assert np.allclose(x, (pol.wording_bag(P, new) - mean) * scale)
-
-
 def test_stated_answers_change_scores_alike_on_numpy_and_torch(tiny_graph):
     """w_known reads which candidates lead to (and whether the walker stands on) an answer a
     visible fact already states; numpy and torch agree, and without stated answers it is unread."""
