@@ -1,4 +1,4 @@
-"""Print the policy / greedy / walk table for the demo test split, by wording and hop count."""
+"""Print the policy / greedy / walk table for a demo split (test by default), by wording and hop count."""
 from __future__ import annotations
 
 import argparse
@@ -22,6 +22,8 @@ def main() -> int:
     ap.add_argument("--store", default=str(ROOT / ".bench" / "demo.duckdb"))
     ap.add_argument("--retrain", action="store_true")
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--split", choices=("test", "valid"), default="test",
+                    help="valid: the split settings are chosen on (its new wordings are not the test's)")
     args = ap.parse_args()
     Path(args.store).parent.mkdir(parents=True, exist_ok=True)
     hp = hopper.open_store(args.store)
@@ -36,13 +38,13 @@ def main() -> int:
         train_s = time.monotonic() - t0
         print(f"training: {summary['epochs']} epochs, {train_s:.0f} s, "
               f"{summary['rollouts_per_second']} rollouts/s, validation Hits@1 {summary['valid_hits1']:.3f}")
-    rows = [json.loads(line) for line in (DEMO / "questions_test.jsonl").read_text("utf-8").splitlines() if line]
+    rows = [json.loads(line) for line in (DEMO / f"questions_{args.split}.jsonl").read_text("utf-8").splitlines() if line]
     with tempfile.TemporaryDirectory() as tmp:
         for wording in ("seen", "new"):
             part = Path(tmp) / f"{wording}.jsonl"
             part.write_text("".join(json.dumps(r) + "\n" for r in rows if r["wording"] == wording), "utf-8")
             res = hp.evaluate(part)
-            print(f"\n## test split, {wording} wordings ({res['questions']} questions)")
+            print(f"\n## {args.split} split, {wording} wordings ({res['questions']} questions)")
             print(format_eval(res))
     print(f"\nmachine: {os.cpu_count()} cores, {cpu_model()}; load {load_s:.0f} s")
     print("reproduce: scripts/bench_demo --retrain")
