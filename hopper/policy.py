@@ -39,7 +39,8 @@ Kinship) is like, as the published walkers do.
 
 A policy trained with the one-hop scorer (``reward_scorer``, ``hopper.scorer``) keeps it as
 ``S_ent``/``S_rel`` and weighs a completion question's answers by it (``scorer_weight``,
-chosen on the validation questions; 0 leaves the beam scores as they are):
+chosen on the validation questions; 0 leaves the beam scores as they are; ``scorer_loss``
+says whether p_scorer is a sigmoid, "bce", or a softmax over the entities, "softmax"):
 
     answer     score(e) ~ sum over beams ending on e of pi(beam) * p_scorer(e | start, r_q) ** w
                (rescaled to the beam scores' total)

@@ -230,11 +230,17 @@ def weigh_by_scorer(policy: pol.Policy, graph: Graph, start: int, qrel: int, sco
     p = np.full(len(ents), np.nan)
     inside = er < known
     if inside.any():
-        scorer = Scorer(policy.params["S_ent"], policy.params["S_rel"])
+        scorer = Scorer(policy.params["S_ent"], policy.params["S_rel"],
+                        policy.settings.get("scorer_loss", "bce"))  # bce: policies kept before
         p[inside] = scorer.probs_of(int(rows[start]), qrel, er[inside])
     p[~inside] = np.nanmean(p) if inside.any() else 1.0
-    weighed = np.fromiter(scores.values(), np.float64, len(ents)) * p ** weight
-    weighed *= sum(scores.values()) / max(weighed.sum(), 1e-300)  # the same total as before
+    # in logs: p ** 8 of a softmax probability can underflow where the products still differ
+    with np.errstate(divide="ignore"):
+        logs = np.log(np.fromiter(scores.values(), np.float64, len(ents))) + weight * np.log(p)
+    if not np.isfinite(logs.max()):
+        return scores
+    weighed = np.exp(logs - logs.max())
+    weighed *= sum(scores.values()) / weighed.sum()  # the same total as before
     return dict(zip(ents, weighed.tolist()))
 
 

@@ -56,7 +56,7 @@ class TrainSettings:
     reward_scorer: str = "none"  # "complex": a wrong answer of a completion question earns a
     #                              one-hop ComplEx scorer's probability (hopper.scorer), not 0;
     #                              the policy keeps the scorer to weigh answers (keep_scorer)
-    scorer_epochs: int = 600    # training epochs of that scorer
+    scorer_epochs: int = 100    # training epochs of that scorer (hopper.scorer.fit_scorer)
     completion_episodes: str = "one-answer"  # completion questions whose answers facts state:
     #                              "one-answer": an episode per answer, only its facts hidden,
     #                              the other answers visible and unrewarded (as a test meets
@@ -319,7 +319,7 @@ def validate(graph: Graph, policy: pol.Policy, eps: list, beam: int):
     return float(np.mean(hits)) if hits else 0.0, float(np.mean(rr)) if rr else 0.0, conf
 
 
-SCORER_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 4.0, 8.0)  # the powers of the scorer tried on validation
+SCORER_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0)  # powers of the scorer tried on validation
 
 
 def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam: int,
@@ -330,6 +330,7 @@ def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam:
     With 0 the scorer is not kept (its arrays would only take room in the store)."""
     policy.params |= {"S_ent": scorer.ent, "S_rel": scorer.rel}
     policy.settings["scorer_entities"] = list(graph.entity_names)
+    policy.settings["scorer_loss"] = scorer.loss  # how its scores become probabilities
     tried = []
     for w in SCORER_WEIGHTS:
         policy.settings["scorer_weight"] = w
@@ -339,6 +340,7 @@ def keep_scorer(graph: Graph, policy: pol.Policy, scorer, valid_eps: list, beam:
     policy.settings["scorer_weight"] = -best[2]
     if best[2] == 0:
         del policy.params["S_ent"], policy.params["S_rel"], policy.settings["scorer_entities"]
+        del policy.settings["scorer_loss"]
     if log:
         log("scorer weight on validation Hits@1: " +
             ", ".join(f"{-w:g}: {h:.3f}" for h, _, w in tried) + f"; kept {-best[2]:g}")

@@ -477,8 +477,10 @@ def main(argv=None) -> int:
     print(_row("relation-frequency baseline (this run)", base))
     if str(settings.get("reward_scorer", "none")).startswith("complex"):
         t1 = time.monotonic()
-        sc = ranking_metrics(scorer_ranks(hp, train, test, known, entities,
-                                          int(settings.get("scorer_epochs", 600)), args.seed))
+        from hopper.train import TrainSettings
+
+        epochs = int(settings.get("scorer_epochs", TrainSettings.scorer_epochs))
+        sc = ranking_metrics(scorer_ranks(hp, train, test, known, entities, epochs, args.seed))
         print(_row("one-hop ComplEx scorer alone (shaping reward)", sc))
         log(f"scorer reference row: {time.monotonic() - t1:.0f} s")
     for name, h1, h3, h10, mrr in PUBLISHED[args.dataset]:

@@ -118,23 +118,6 @@ def test_short_training_beats_relation_frequency(umls, tmp_path):
     assert ours["mrr"] >= base["mrr"] + 0.10, msg
 
 
-def test_complex_scorer_learns_a_one_hop_pattern():
-    """hopper.scorer fits ComplEx on (start, relation, answers): relation 0 maps entity i to
-    i + 1 (mod 8), relation 1 back; after fitting, each start's answer is ranked first of the 8
-    and gets a probability above 0.5."""
-    import numpy as np
-
-    from hopper.scorer import fit_scorer
-
-    n = 8
-    queries = [(i, 0, {(i + 1) % n}) for i in range(n)] + [(i, 1, {(i - 1) % n}) for i in range(n)]
-    scorer = fit_scorer(queries, n, 2, epochs=300, dim=8, dropout=0.0, smoothing=0.0, seed=0)
-    p = scorer.probs(np.arange(n), np.zeros(n, int))
-    assert p.shape == (n, n) and np.all((p >= 0) & (p <= 1))
-    assert all(int(np.argmax(p[i])) == (i + 1) % n for i in range(n))
-    assert all(p[i, (i + 1) % n] > 0.5 for i in range(n))
-
-
 def test_one_answer_each_hides_one_stated_answer_per_episode():
     """A completion question (a, r, {b, c, x}) whose answers b and c facts state becomes two
     training episodes: each hides only its answer's fact, keeps the other visible as stated,
@@ -220,6 +203,15 @@ def test_kept_scorer_weighs_completion_answers_by_complex_probability():
     want = {x: v / sum(want.values()) for x, v in want.items()}  # rescaled to the total, 1.0
     assert got.keys() == want.keys()
     assert all(abs(got[x] - want[x]) < 1e-5 for x in want)
+    # a scorer fitted with the softmax loss: p = softmax over the scorer's entities a, b, c
+    policy = Policy({"S_ent": ent, "S_rel": rel}, settings | {"scorer_loss": "softmax"})
+    score = np.real((cplx[0] * w) @ np.conj(cplx).T)
+    p = np.exp(score) / np.exp(score).sum()
+    got = weigh_by_scorer(policy, g, e("a"), 0, dict(scores))
+    mean = (p[1] + p[2]) / 2
+    want = {e("b"): 0.5 * p[1] ** 2, e("c"): 0.3 * p[2] ** 2, e("d"): 0.2 * mean ** 2}
+    want = {x: v / sum(want.values()) for x, v in want.items()}
+    assert all(abs(got[x] - want[x]) < 1e-5 for x in want)
     policy.settings["scorer_weight"] = 0.0
     assert weigh_by_scorer(policy, g, e("a"), 0, dict(scores)) == scores
     policy.settings["scorer_weight"] = 2.0
@@ -252,6 +244,8 @@ def test_keep_scorer_picks_the_best_validated_power_and_drops_a_useless_scorer(m
     base = {w: (0.5, 0.6) for w in tr.SCORER_WEIGHTS}
     p = run(base | {2.0: (0.7, 0.7), 4.0: (0.7, 0.8), 8.0: (0.7, 0.8)})
     assert p.settings["scorer_weight"] == 4.0 and "S_ent" in p.params  # MRR, then smaller power
+    assert p.settings["scorer_loss"] == "bce"  # how weigh_by_scorer turns scores to probabilities
     p = run(base | {0.0: (0.6, 0.6)})
     assert p.settings["scorer_weight"] == 0.0
     assert "S_ent" not in p.params and "scorer_entities" not in p.settings
+    assert "scorer_loss" not in p.settings
