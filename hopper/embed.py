@@ -380,13 +380,16 @@ def _cpu_count() -> int:
 FEW_TEXTS = 64
 
 
-def _encoder_threads() -> int:
+def _encoder_threads(own: int = 0) -> int:
     """onnxruntime's threads for one encoder: every core, unless other work already keeps
-    them busy (1-minute load average at least cores - 0.5), then half of them.
+    them busy (1-minute load average, less the ``own`` threads of this encoder's running
+    session, at least cores - 0.5), then half of them.
 
     On a 2-core machine at load 5, one thread encoded 200 questions in 1.6 s against 2.2 s
     with two (whose spinning waits for a core it does not get); idle, two are faster.  The
     vectors are the same either way (onnxruntime does not split a sum across threads).
+    Without ``own``, a long load that reads the count again while it runs counted its own two
+    threads as other work and fell back to one (seen at 1M: 148% CPU on two idle cores).
     ``HOPPER_ENCODER_THREADS`` overrides it.
     """
     raw = os.environ.get("HOPPER_ENCODER_THREADS", "").strip()
@@ -394,7 +397,7 @@ def _encoder_threads() -> int:
         return int(raw)
     cores = _cpu_count()
     try:
-        busy = os.getloadavg()[0] >= cores - 0.5
+        busy = os.getloadavg()[0] - own >= cores - 0.5
     except (AttributeError, OSError):
         busy = False
     return max(1, cores // 2) if busy and cores > 1 else cores
@@ -467,9 +470,10 @@ class _OnnxEncoder:
         return self.session.run(None, feed)[0]
 
     @staticmethod
-    def _session(ort, path: pathlib.Path, optimized: bool, prepack: bool = True):
+    def _session(ort, path: pathlib.Path, optimized: bool, prepack: bool = True,
+                 threads: int | None = None):
         so = ort.SessionOptions()
-        so.intra_op_num_threads = _encoder_threads()  # read again per chunk (_follow_load)
+        so.intra_op_num_threads = threads or _encoder_threads()  # again per chunk (_follow_load)
         so.inter_op_num_threads = 1
         so.graph_optimization_level = (ort.GraphOptimizationLevel.ORT_DISABLE_ALL if optimized
                                        else ort.GraphOptimizationLevel.ORT_ENABLE_ALL)
@@ -483,12 +487,13 @@ class _OnnxEncoder:
         the session's: a long load started while the machine was busy would otherwise stay on
         one thread after it frees (the 1M load ran 44 min on one of two idle cores).  Not for a
         few texts (a cold ``ask``), where it would only cost time."""
-        want = _encoder_threads()
         have = self.session.get_session_options().intra_op_num_threads
+        want = _encoder_threads(own=have)
         if want != have:
             import onnxruntime as ort
 
-            self.session = self._session(ort, self.model_path, self._optimized, self.prepacked)
+            self.session = self._session(ort, self.model_path, self._optimized, self.prepacked,
+                                         want)
 
     def _prepack(self) -> None:
         """Replace a session made for a few texts by the pre-packed one (faster per text)."""

@@ -293,6 +293,17 @@ def test_batches_do_not_pad_short_texts_to_long_ones():
     assert sorted(np.concatenate(embed._batches(order, lengths, 2)).tolist()) == list(range(10))
 
 
+def test_the_thread_count_does_not_count_the_encoders_own_threads_as_other_work(monkeypatch):
+    """On 2 cores: a 1-minute load average of 2.0 while this encoder's own 2 threads run is no
+    other work (keep 2); 3.0 with its 2 is one other job, still under cores - 0.5 (keep 2);
+    3.0 while it runs 1 thread is two other jobs (1).  Common practice, no outside source."""
+    monkeypatch.delenv("HOPPER_ENCODER_THREADS", raising=False)
+    monkeypatch.setattr(embed, "_cpu_count", lambda: 2)
+    for load, own, want in ((2.0, 2, 2), (3.0, 2, 2), (3.0, 1, 1), (2.0, 0, 1), (0.3, 0, 2)):
+        monkeypatch.setattr(embed.os, "getloadavg", lambda load=load: (load, load, load))
+        assert embed._encoder_threads(own=own) == want, (load, own)
+
+
 def test_a_long_job_follows_the_thread_count_and_keeps_its_vectors(cache, monkeypatch):
     """A load re-reads the encoder's thread count before each chunk (the machine may have freed
     up since it began): the session is remade with the new count, and the vectors stay the same
