@@ -1,0 +1,45 @@
+#!/usr/bin/env python3
+"""Peak RSS of the step after a load: the graph's arrays read from a store and its IVF index built, in a fresh process.
+
+Usage: .venv/bin/python scripts/bench_graph_memory.py --store .bench/s1m.duckdb [--code DIR]
+  --code: a checkout whose hopper/ to use (e.g. `git archive REV hopper | tar -x -C DIR`), to
+  compare two revisions on the same store.  Nothing is written: the cache beside the store
+  is neither read nor replaced.
+"""
+import argparse
+import os
+import resource
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+CHILD = """
+import resource, sys, time
+from hopper.env import Graph
+from hopper.store import Store
+t = time.monotonic()
+g = Graph.from_store(Store(sys.argv[1]), use_cache=False, build_index=True)
+print(f"{g.n_facts} facts, IVF index {'built' if g.ivf is not None else 'not built'}, "
+      f"{time.monotonic() - t:.0f} s", flush=True)
+"""
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__)
+    ap.add_argument("--store", required=True)
+    ap.add_argument("--code", default=str(ROOT))
+    args = ap.parse_args()
+    env = dict(os.environ, PYTHONPATH=str(Path(args.code).resolve()), HF_HUB_OFFLINE="1")
+    out = subprocess.run([sys.executable, "-c", CHILD, args.store], env=env, text=True,
+                         capture_output=True)
+    if out.returncode:
+        sys.stderr.write(out.stderr)
+        return out.returncode
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    print(f"{args.code}: {out.stdout.strip()}; peak RSS {peak:.0f} MB")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
