@@ -147,9 +147,20 @@ class Graph:
                 except (OSError, ValueError):
                     graph = None  # a damaged cache is rebuilt below
             if graph is None:
+                # DuckDB keeps the blocks it reads cached (up to 80% of RAM by default): the
+                # vectors would sit in memory twice, in its cache and in our arrays.
+                con.execute("SET memory_limit = '512MB'")
                 graph = cls._read_store(con, version)
                 if use_cache:
                     graph._write_cache(cache)
+                    if (cache / "done").exists():
+                        # Continue on the memory-mapped cache, as every later process does:
+                        # the read arrays (2.2 GB at a million facts) are let go before the
+                        # IVF index makes its own copy of the fact vectors.
+                        try:
+                            graph = cls._read_cache(cache, version)
+                        except (OSError, ValueError):
+                            pass
         if build_index and graph.ivf is None and graph.n_facts >= min_facts():
             graph.ivf = IVFIndex.build(np.asarray(graph.fact_vecs))
             if use_cache and (cache / "done").exists():

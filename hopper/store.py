@@ -230,6 +230,9 @@ class Store:
                 self.require()
             con = self._open(write, deadline)
             try:
+                # DuckDB draws a progress bar on stdout for queries over 2 s (the graph step
+                # of a million facts): it would break `--json` output.
+                con.execute("SET enable_progress_bar = false")
                 if write:
                     self._ensure_schema(con)
                 elif not self._has_schema(con):
