@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import hashlib
-import os
 import shutil
 import tempfile
 import uuid
@@ -10,6 +9,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .files import write_atomic
 from .store import DIM as _DIM
 
 CHUNK = 4096  # texts embedded (and saved) at a time: bounds memory and the work lost to a crash
@@ -93,21 +93,13 @@ class PendingVectors:
         flat = np.ascontiguousarray(vectors, np.float32).reshape(-1)
         table = pa.table({"key": pa.array(keys, pa.string()),
                           "embedding": pa.FixedSizeListArray.from_arrays(pa.array(flat), _DIM)})
-        fd, tmp = tempfile.mkstemp(prefix=".chunk-", suffix=".parquet", dir=self.folder)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                pq.write_table(table, fh, compression="none")
-            # a name of its own: two loads saving chunks that begin alike must not replace
-            # each other's (one may be reading it under the write lock)
-            final = self.folder / f"chunk-{uuid.uuid4().hex}.parquet"
-            os.replace(tmp, final)
-            self._used.add(final)
-        except BaseException:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
-            raise
+        buf = pa.BufferOutputStream()
+        pq.write_table(table, buf, compression="none")
+        # a name of its own: two loads saving chunks that begin alike must not replace each
+        # other's (one may be reading it under the write lock)
+        final = self.folder / f"chunk-{uuid.uuid4().hex}.parquet"
+        write_atomic(final, buf.getvalue().to_pybytes())
+        self._used.add(final)
 
     def sql_source(self, con) -> str:
         """A SQL table expression (key, embedding FLOAT[384]) over every readable chunk, one
