@@ -36,8 +36,8 @@ class PendingVectors:
     A load writes each embedded chunk here as soon as it is done, and keeps no vector in
     memory: its write transaction reads them back with DuckDB (``sql_source``), so a load's
     memory does not grow with the number of facts.  A re-run after an interruption embeds
-    only the texts whose keys are missing.  The folder is removed once the load has
-    committed.  Where the folder cannot be written, the chunks go to a private temporary
+    only the texts whose keys are missing.  Once the load has committed, the chunks it wrote
+    or used are removed (another load's stay), and the folder when empty.  Where the folder cannot be written, the chunks go to a private temporary
     folder instead (the load works, it just cannot resume).
     """
 
