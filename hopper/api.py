@@ -355,10 +355,16 @@ class Hopper:
             return None
         out = Path(str(self.path) + f".train-v{version}.png")
         fig, ax = plt.subplots(figsize=(6, 3.5))
-        ep = [c["epoch"] for c in curve]
-        ax.plot(ep, [c["train_reward"] for c in curve], marker="o", label="training reward (mean)")
-        ax.plot(ep, [c["valid_hits1"] for c in curve], marker="s", label="validation Hits@1")
-        ax.set_xlabel("epoch")
+        members = sorted({c.get("member", 1) for c in curve})
+        for m in members:  # an ensemble's members one after the other, each its own line
+            part = [c for c in curve if c.get("member", 1) == m]
+            ep = [c["epoch"] for c in part]
+            first = m == members[0]
+            ax.plot(ep, [c["train_reward"] for c in part], marker="o", color="C0",
+                    label="training reward (mean)" if first else None)
+            ax.plot(ep, [c["valid_hits1"] for c in part], marker="s", color="C1",
+                    label="validation Hits@1" if first else None)
+        ax.set_xlabel("epoch" if len(members) == 1 else f"epoch ({len(members)} members in turn)")
         ax.set_ylim(0, 1.02)
         ax.set_title(f"hopper policy v{version}")
         ax.grid(alpha=0.3)

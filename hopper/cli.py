@@ -64,6 +64,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=_positive("--seed", 0), default=0)
     s.add_argument("--max-hops", type=_positive("--max-hops", 1, 8), default=4)
     s.add_argument("--epochs", type=_positive("--epochs", 1, 10000), default=None)
+    s.add_argument("--members", type=_positive("--members", 1, 16), default=None,
+                   help="train this many policies from different seeds, to answer together "
+                        "(steadier on new wordings; M times the training time; default 1)")
     s.add_argument("--time-budget", type=_positive("--time-budget", 0), default=None,
                    metavar="SECONDS", help="stop training after this many seconds")
     s.add_argument("--resume", action="store_true",
@@ -164,6 +167,8 @@ def _cmd_train(args, hp):
         extra["epochs"] = args.epochs
     if args.time_budget is not None:
         extra["time_budget"] = float(args.time_budget)
+    if args.members is not None:
+        extra["members"] = args.members
     log = None if args.json else (lambda m: print(m, file=sys.stderr))
     summary = hp.train(args.questions, valid=args.valid, seed=args.seed, max_hops=args.max_hops,
                        log=log, resume=args.resume, **extra)
@@ -173,6 +178,9 @@ def _cmd_train(args, hp):
           f"({summary['rollouts_per_second']} rollouts/s)")
     print(f"validation Hits@1 {summary['valid_hits1']:.3f}, MRR {summary['valid_mrr']:.3f}; "
           f"abstains below confidence {summary['threshold']:.2f}")
+    if summary.get("members"):
+        print(f"{len(summary['members'])} members answer together; their validation Hits@1 alone: "
+              + ", ".join(f"{m['valid_hits1']:.3f}" for m in summary["members"]))
     print(f"baselines tuned on validation: greedy {summary['baselines']['greedy_hops']} hop(s), "
           f"walk {summary['baselines']['walk_hops']} hop(s)")
     if summary.get("curve_png"):

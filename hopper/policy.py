@@ -30,6 +30,11 @@ probabilities.
                                                                            k_0: stands on one)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
+    ensemble   pi(a | state) = 1/M sum_m pi_m(a | state_m)                 (M members trained
+                                                                           from different seeds,
+                                                                           each with its own
+                                                                           memory; M = 1 by
+                                                                           default)
 
 ``N_c``, ``N_z`` and ``N_s`` are learned entity vectors (setting ``entity_embed``, off by default): one row
 per entity known at training time plus a last row shared by every other entity.  Off, both have
@@ -332,8 +337,11 @@ class Policy:
     """A trained policy: numpy weights plus the settings needed to use them."""
 
     def __init__(self, params: dict, settings: dict, version: int | None = None,
-                 scores_: dict | None = None):
+                 scores_: dict | None = None, members: list | None = None):
         self.params = {k: np.asarray(v, np.float32) for k, v in params.items()}
+        # every member's weights, the first being ``params`` itself (the kept scorer lives there)
+        self.members = [self.params] + [{k: np.asarray(v, np.float32) for k, v in m.items()}
+                                        for m in (members or [])]
         self.settings = dict(settings)
         self.version = version
         self.scores = dict(scores_ or {})
@@ -371,10 +379,11 @@ class Policy:
         con.execute("INSERT INTO policies VALUES (?, ?, ?, 'hopper-policy/1', ?, ?, ?)",
                     [version, created_at, active, self.settings.get("model", ""),
                      json.dumps(self.settings), json.dumps(self.scores)])
-        for name, arr in self.params.items():
-            arr = np.ascontiguousarray(arr, dtype="<f4")
-            con.execute("INSERT INTO policy_tensors VALUES (?, ?, ?, 'float32-le', ?)",
-                        [version, name, list(arr.shape), arr.tobytes()])
+        for m, params in enumerate(self.members):
+            for name, arr in params.items():
+                arr = np.ascontiguousarray(arr, dtype="<f4")
+                con.execute("INSERT INTO policy_tensors VALUES (?, ?, ?, 'float32-le', ?)",
+                            [version, f"m{m}.{name}" if m else name, list(arr.shape), arr.tobytes()])
         self.version = version
 
     @classmethod
@@ -397,13 +406,17 @@ class Policy:
         key = (row[0], row[1])
         if known is not None and key in known:
             return known[key]
-        params = {}
+        by_member: dict = {}
         for name, shape, dtype, data in con.execute(
                 "SELECT name, shape, dtype, data FROM policy_tensors WHERE version = ?",
                 [row[0]]).fetchall():
             if dtype != "float32-le":
                 raise ValueError(f"policy tensor {name}: unknown dtype {dtype}")
-            params[name] = np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+            m, _, rest = name.partition(".")  # "m2.W_h": the third member's; "W_h": the first's
+            m, name = (int(m[1:]), rest) if rest and m[:1] == "m" and m[1:].isdigit() else (0, name)
+            by_member.setdefault(m, {})[name] = \
+                np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+        params = by_member.get(0, {})
         if "w_vocab" not in params and "q_proj" in params:  # made before policies read words
             dim = params["q_proj"].shape[0]
             params |= {"w_vocab": np.zeros((0, dim), np.float32),
@@ -418,10 +431,24 @@ class Policy:
             from .errors import InputError
             raise InputError(f"policy v{row[0]} was made by another version of hopper (it lacks "
                              f"{', '.join(sorted(missing))})", hint="train a new policy")
-        policy = cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"))
+        policy = cls(params, json.loads(row[1]), version=row[0], scores_=json.loads(row[2] or "{}"),
+                     members=[by_member[m] for m in sorted(by_member) if m])
         if known is not None:
             known[key] = policy
         return policy
+
+
+def mixture_step(members: list, ops, graph, relmap: np.ndarray, xs: list, hs: list, hop,
+                 batch: dict, **kw):
+    """``step`` for an ensemble: log of the members' mean probabilities [B, 1 + C], and each
+    member's candidate representations (for its own ``next_memory``).  One member: ``step``
+    itself, number for number."""
+    outs = [step(P, ops, graph, relmap, x, h, hop, batch, **kw) for P, x, h in zip(members, xs, hs)]
+    if len(outs) == 1:
+        return outs[0][0], [outs[0][1]]
+    lps = np.stack([lp for lp, _ in outs])
+    top = lps.max(0)
+    return (top + np.log(np.exp(lps - top).mean(0))).astype(lps.dtype), [c for _, c in outs]
 
 
 def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=None,

@@ -115,6 +115,7 @@ def beam_search_many(graph: Graph, policy: pol.Policy, eps: list, beam: int = BE
 def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
                        max_hops: int | None, relmap: np.ndarray) -> list:
     P = policy.params
+    Ms = policy.members
     ops = pol.NumpyOps
     T = min(max_hops or policy.max_hops, policy.max_hops)
     entmap = _entity_map(policy, graph)
@@ -130,14 +131,14 @@ def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
             todo.append(k)
     if not todo:
         return outs
-    X = {k: pol.question_features(P, eps[k].qstate, eps[k].word_vecs) for k in todo}
+    X = {k: [pol.question_features(M, eps[k].qstate, eps[k].word_vecs) for M in Ms] for k in todo}
     linked = {k: frozenset(eps[k].starts) for k in todo}
     caches = {k: {} for k in todo}  # pre-ranked neighbours and dense results, per question
     qrel = {k: (relmap[eps[k].qrel] if eps[k].qrel >= 0 else -1) for k in todo}
     # The live beams of all questions, question by question: owner, walker, memory, log-prob, steps
     own = [k for k in todo for _ in eps[k].starts]
     walkers = [Walker(s, (), (s,)) for k in todo for s in eps[k].starts]
-    hs = np.zeros((len(own), H), np.float32)
+    hs = [np.zeros((len(own), H), np.float32) for _ in Ms]  # each member's memory of each beam
     lps = [-math.log(len(eps[k].starts)) for k in own]
     steps = [() for _ in own]
     finished: dict = {k: [] for k in todo}  # [(log-prob, entity, steps)]
@@ -148,10 +149,10 @@ def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
         batch = candidates_batch(graph, walkers, np.stack([eps[k].qvec for k in own]), t, T,
                                  [linked[k] for k in own], [eps[k].hidden for k in own],
                                  [caches[k] for k in own], cap=cap)
-        logp, crepr = pol.step(P, ops, graph, relmap, np.stack([X[k] for k in own]), hs,
-                               np.full(n, t), batch, qrel=np.array([qrel[k] for k in own]),
-                               entmap=entmap, start=[w.visited[0] for w in walkers],
-                               stated=[eps[k].stated for k in own])
+        logp, creprs = pol.mixture_step(
+            Ms, ops, graph, relmap, [np.stack([X[k][m] for k in own]) for m in range(len(Ms))],
+            hs, np.full(n, t), batch, qrel=np.array([qrel[k] for k in own]), entmap=entmap,
+            start=[w.visited[0] for w in walkers], stated=[eps[k].stated for k in own])
         counts = batch["counts"]
         for i, k in enumerate(own):
             finished[k].append((lps[i] + float(logp[i, 0]), walkers[i].entity, steps[i]))
@@ -170,10 +171,8 @@ def _beam_search_batch(graph: Graph, policy: pol.Policy, eps: list, beam: int,
         place = np.arange(len(sel)) - np.repeat(first_of, np.diff(np.r_[first_of, len(sel)]))
         sel = sel[place < beam]
         rows, cols, score = rows[sel], cols[sel], score[sel]
-        if len(rows):
-            hs = pol.next_memory(P, ops, hs[rows], crepr[rows, cols]).astype(np.float32)
-        else:
-            hs = np.zeros((0, H), np.float32)
+        hs = [pol.next_memory(M, ops, h[rows], cr[rows, cols]).astype(np.float32) if len(rows)
+              else np.zeros((0, H), np.float32) for M, h, cr in zip(Ms, hs, creprs)]
         facts, dirs, nexts = batch["facts"], batch["dirs"], batch["nexts"]
         new_own, new_walkers, new_steps = [], [], []
         for i, j in zip(rows.tolist(), cols.tolist()):

@@ -11,14 +11,16 @@ kind, fading to 0), less ``fetch_cost`` per fetch.  With r_t the reward at hop t
 and the loss minimised is  - sum_t (G_t - b_t) log pi(a_t | s_t) - beta * H(pi(. | s_t))
 (see ``reinforce_loss``; by default each question's advantages are divided by the spread of
 its rollouts' returns).  Adam, gradient clipping, mini-batches of questions, early stopping on
-validation Hits@1 from beam search, all seeded.
+validation Hits@1 from beam search, all seeded.  With ``members`` > 1 the run trains that many
+policies from different seeds, one after the other, and answers with their mean probabilities
+(``policy.mixture_step``; ``fit_members``).
 """
 from __future__ import annotations
 
 import math
 import sys
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 
@@ -64,6 +66,10 @@ class TrainSettings:
     #                              every answer's facts hidden; "all-then-one": all-answers
     #                              for the first ``switch_epochs`` epochs, then one-answer
     switch_epochs: int = 5      # all-answers epochs before "all-then-one" switches
+    members: int = 1            # policies trained from different seeds and answering together
+    #                             (their mean probabilities): steadier on wordings unlike the
+    #                             training questions' than any one of them, at M times the
+    #                             training time (``fit_members``)
 
     def validate(self) -> None:
         checks = {
@@ -81,6 +87,7 @@ class TrainSettings:
             "completion_episodes": self.completion_episodes in ("one-answer", "all-answers",
                                                                  "all-then-one"),
             "switch_epochs": self.switch_epochs >= 0,
+            "members": 1 <= self.members <= 16,
         }
         for name, ok in checks.items():
             if not ok:
@@ -431,10 +438,81 @@ def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
     torch.set_num_threads(1)  # tiny tensors: more threads only wait for each other
     try:
         with threadpool_limits(limits=1, user_api="blas"):
+            if settings.members > 1:
+                return fit_members(graph, train_eps, valid_eps, settings, progress, log,
+                                   save_checkpoint, resume_from)
             return _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint,
                         resume_from)
     finally:
         torch.set_num_threads(threads)
+
+
+def member_seed(seed: int, i: int) -> int:
+    """The seed of ensemble member i: the run's own seed for the first, derived ones after."""
+    return seed if i == 0 else int(np.random.SeedSequence([seed, i]).generate_state(1)[0])
+
+
+def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
+                save_checkpoint=None, resume_from=None):
+    """Train ``settings.members`` policies (seeds ``member_seed``), one after the other, and
+    join them into one policy answering with their mean probabilities.
+
+    Each member is a whole ``_fit`` run with its own early stopping; the threshold is then
+    chosen on the ensemble's validation answers.  The checkpoint holds the finished members
+    (``member<i>.*`` arrays, their settings and summaries in ``members_done``) beside the
+    running member's state, so a resumed run skips the finished ones.
+    """
+    M = settings.members
+    done: list = []            # [(params, settings, summary)] of the finished members
+    start, member_resume = 0, None
+    if resume_from is not None:
+        arrays, meta = resume_from
+        start = int(meta.get("member", 0))
+        for j, (st, sm) in enumerate(meta.get("members_done", [])[:start]):
+            pre = f"member{j}."
+            done.append(({k[len(pre):]: np.asarray(v, np.float32) for k, v in arrays.items()
+                          if k.startswith(pre)}, st, sm))
+        member_resume = ({k: v for k, v in arrays.items() if not k.startswith("member")}, meta)
+    for i in range(start, M):
+        s_i = replace(settings, seed=member_seed(settings.seed, i), members=1,
+                      time_budget=settings.time_budget / M)
+        kept = {f"member{j}.{k}": v for j, (p, _, _) in enumerate(done) for k, v in p.items()}
+        kept_meta = {"member": i, "members_done": [[st, sm] for _, st, sm in done]}
+
+        def save(arrays, meta, kept=kept, kept_meta=kept_meta):
+            save_checkpoint(arrays | kept, meta | kept_meta)
+
+        if log:
+            log(f"member {i + 1} of {M} (seed {s_i.seed})")
+        policy, summary = _fit(graph, train_eps, valid_eps, s_i, progress, log,
+                               save if save_checkpoint is not None else None,
+                               member_resume if i == start else None)
+        done.append((policy.params, policy.settings, summary))
+    first_settings = dict(done[0][1]) | {"members": M, "seed": settings.seed,
+                                         "time_budget": settings.time_budget}
+    others = [{k: v for k, v in p.items() if not k.startswith("S_")} for p, _, _ in done[1:]]
+    policy = pol.Policy(done[0][0], first_settings, members=others)  # the scorer: the first's
+    vh, vm, conf = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (0.0, 0.0, [])
+    policy.settings["threshold"] = choose_threshold(conf)
+    sums = [sm for _, _, sm in done]
+    seconds = sum(sm["seconds"] for sm in sums)
+    rollouts = sum(sm["rollouts_per_second"] * sm["seconds"] for sm in sums)
+    curve, offset = [], 0
+    for i, sm in enumerate(sums):  # one curve, epochs counted on across the members
+        curve += [c | {"epoch": c["epoch"] + offset, "member": i + 1} for c in sm["curve"]]
+        offset += sm["epochs"]
+    summary = {"epochs": offset, "seconds": round(seconds, 1),
+               "rollouts_per_second": round(rollouts / max(seconds, 1e-9), 1),
+               "train_questions": sums[0]["train_questions"], "valid_questions": len(valid_eps),
+               "valid_hits1": vh, "valid_mrr": vm, "threshold": policy.settings["threshold"],
+               "members": [{"seed": st["seed"], "epochs": sm["epochs"],
+                            "valid_hits1": sm["valid_hits1"]} for _, st, sm in done],
+               "curve": curve}
+    if log:
+        log("members' validation Hits@1 " + ", ".join(f"{m['valid_hits1']:.3f}" for m in summary["members"])
+            + f"; together {vh:.3f}")
+    policy.scores = {k: v for k, v in summary.items() if k != "curve"}
+    return policy, summary
 
 
 def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=None,

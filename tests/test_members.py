@@ -1,0 +1,122 @@
+"""Ensembles (``members``): policies trained from different seeds answer with their mean probabilities.
+
+Reference for the arithmetic: an ensemble's predictive distribution is the plain mean of its
+members' predictive distributions (Lakshminarayanan, Pritzel & Blundell 2017, "Simple and
+Scalable Predictive Uncertainty Estimation using Deep Ensembles", section 2.4; cited from
+memory).  The facts and questions of the training tests are invented (tests/helpers.py).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import hopper
+from helpers import TINY, make_tiny_store, same_params
+from hopper import policy as pol
+from hopper.env import Walker, candidates, pad_candidates
+from hopper.errors import InputError
+from hopper.search import beam_search
+
+
+def _setup(graph, seed=0):
+    rng = np.random.default_rng(seed)
+    q = rng.standard_normal(16).astype(np.float32)
+    q /= np.linalg.norm(q)
+    starts = [graph.entity_index("a"), graph.entity_index("b")]
+    walkers = [Walker(s, (), (s,)) for s in starts]
+    batch = pad_candidates([candidates(graph, w, q, 0, 3, frozenset(starts)) for w in walkers])
+    n = len(walkers)
+    return q, batch, n, rng
+
+
+def test_mixture_is_the_mean_of_the_members_probabilities(tiny_graph):
+    q, batch, n, rng = _setup(tiny_graph)
+    relmap = np.arange(len(tiny_graph.relation_names))
+    members = [pol.init_params(16, 8, len(relmap), 3, seed=s) for s in (1, 2, 3)]
+    for P in members:  # trained-looking weights: the priors alone make members alike
+        P["W_q"] = rng.standard_normal(P["W_q"].shape).astype(np.float32)
+        P["W_v"] = rng.standard_normal(P["W_v"].shape).astype(np.float32)
+    xs = [np.repeat(pol.question_features(P, q, None)[None], n, 0) for P in members]
+    hs = [rng.standard_normal((n, 8)).astype(np.float32) * 0.1 for _ in members]
+    hop = np.zeros(n, int)
+    one = [pol.step(P, pol.NumpyOps, tiny_graph, relmap, x, h, hop, batch)
+           for P, x, h in zip(members, xs, hs)]
+    probs = [np.exp(lp) for lp, _ in one]
+    assert not np.allclose(probs[0], probs[1], atol=1e-3)  # the members do disagree
+    mix, reprs = pol.mixture_step(members, pol.NumpyOps, tiny_graph, relmap, xs, hs, hop, batch)
+    real = np.concatenate([np.ones((n, 1), bool), batch["mask"]], 1)
+    assert np.allclose(np.exp(mix)[real], np.mean(probs, 0)[real], atol=1e-6)
+    assert np.allclose([np.exp(mix[i][real[i]]).sum() for i in range(n)], 1.0, atol=1e-6)
+    for (_, c), r in zip(one, reprs):  # each member keeps its own candidate representations
+        assert np.array_equal(np.asarray(c[:, 0]), np.asarray(r[:, 0]))
+    # one member: exactly ``step``, number for number
+    lp1, _ = pol.mixture_step(members[:1], pol.NumpyOps, tiny_graph, relmap, xs[:1], hs[:1], hop, batch)
+    assert np.array_equal(lp1, one[0][0])
+
+
+def test_an_ensemble_of_one_policy_twice_answers_as_that_policy(tiny_graph):
+    """Two identical members average to the member itself: same ranking, same scores."""
+    from hopper.env import Episode
+
+    q, _, _, rng = _setup(tiny_graph, seed=4)
+    P = pol.init_params(16, 8, len(tiny_graph.relation_names), 3, seed=7)
+    P["W_q"] = rng.standard_normal(P["W_q"].shape).astype(np.float32)
+    settings = {"relations": list(tiny_graph.relation_names), "max_hops": 3}
+    ep = Episode(q, q, [tiny_graph.entity_index("a")])
+    single = beam_search(tiny_graph, pol.Policy(P, settings), ep)
+    double = beam_search(tiny_graph, pol.Policy(P, settings, members=[P]), ep)
+    assert [e for e, _ in single.ranked] == [e for e, _ in double.ranked]
+    assert np.allclose([s for _, s in single.ranked], [s for _, s in double.ranked], atol=1e-6)
+
+
+def test_members_are_trained_stored_and_read_back(tmp_path):
+    hp, questions = make_tiny_store(tmp_path)
+    summary = hp.train(questions, seed=0, epochs=2, members=2, **TINY)
+    assert [m["seed"] for m in summary["members"]][0] == 0 and len(summary["members"]) == 2
+    assert summary["members"][1]["seed"] != 0
+    assert summary["epochs"] == sum(m["epochs"] for m in summary["members"])
+    with hp.store.connect() as con:
+        policy = pol.Policy.read(con)
+    assert len(policy.members) == 2 and policy.settings["members"] == 2
+    assert not same_params(policy.members[0], policy.members[1])  # two seeds, two policies
+    # the first member is the policy a one-member run with the same seed trains
+    alone = hp.train(questions, seed=0, epochs=2, **TINY)
+    with hp.store.connect() as con:
+        single = pol.Policy.read(con, alone["version"])
+    assert len(single.members) == 1
+    assert same_params(single.params, policy.members[0])
+    out = hopper.open_store(hp.path).ask("Who makes the Kessel part 03?", record=False)
+    assert "answer" in out
+
+
+def test_members_out_of_range_is_refused(tmp_path):
+    hp, questions = make_tiny_store(tmp_path)
+    with pytest.raises(InputError) as e:
+        hp.train(questions, members=0, **TINY)
+    assert e.value.field == "members"
+
+
+class Interrupt(Exception):
+    pass
+
+
+def test_a_run_interrupted_in_its_second_member_resumes_to_the_same_policy(tmp_path):
+    hp, questions = make_tiny_store(tmp_path)
+    settings = dict(seed=2, epochs=2, members=2, **TINY)
+    full = hp.train(questions, **settings)
+
+    def stop_in_member_2(message):
+        if message.startswith("member 2 of 2"):
+            stop_in_member_2.seen = True
+        elif getattr(stop_in_member_2, "seen", False) and message.startswith("epoch 1:"):
+            raise Interrupt
+
+    with pytest.raises(Interrupt):
+        hp.train(questions, log=stop_in_member_2, **settings)
+    lines = []
+    resumed = hopper.open_store(hp.path).train(questions, resume=True, log=lines.append, **settings)
+    assert not any(m.startswith("member 1 of 2") for m in lines)  # the first is not trained again
+    with hp.store.connect() as con:
+        a, b = pol.Policy.read(con, full["version"]), pol.Policy.read(con, resumed["version"])
+    assert all(same_params(x, y) for x, y in zip(a.members, b.members)) and len(b.members) == 2
+    assert resumed["valid_hits1"] == full["valid_hits1"]
