@@ -44,7 +44,7 @@ def _fingerprint(cfg, qs, vs, facts_version: int) -> dict:
         rows = [[q.text, q.answers, q.subject, q.relation] for q in questions]
         return hashlib.sha256(json.dumps(rows, ensure_ascii=False).encode("utf-8")).hexdigest()
 
-    settings = {k: v for k, v in asdict(cfg).items() if k != "time_budget"}
+    settings = {k: v for k, v in asdict(cfg).items() if k not in ("time_budget", "workers")}
     return {"settings": settings, "questions": digest(qs), "valid": digest(vs),
             "facts_version": int(facts_version)}
 
@@ -56,9 +56,10 @@ def _use_checkpoint_vectors(checkpoint, eps: list, where) -> None:
     arrays, meta = checkpoint
     qvec, qstate = arrays.get("episodes.qvec"), arrays.get("episodes.qstate")
     counts, wvecs = arrays.get("episodes.word_counts"), arrays.get("episodes.word_vecs")
+    running = meta.get("member", 0) is not None  # None: only finished ensemble members in it
     if any(a is None or len(a) != len(eps) for a in (qvec, qstate, counts)) or wvecs is None or \
-            int(counts.sum()) != len(wvecs) or "vocabulary" not in meta or \
-            any(f"param.{k}" not in arrays for k in PARAM_SHAPES):
+            int(counts.sum()) != len(wvecs) or (running and "vocabulary" not in meta) or \
+            (running and any(f"param.{k}" not in arrays for k in PARAM_SHAPES)):
         raise InputError("the training checkpoint is incomplete or from another version of hopper",
                          file=str(where), hint="train without --resume to start again")
     ends = np.cumsum(counts)

@@ -69,7 +69,8 @@ class TrainSettings:
     members: int = 1            # policies trained from different seeds and answering together
     #                             (their mean probabilities): steadier on wordings unlike the
     #                             training questions' than any one of them, at M times the
-    #                             training time (``fit_members``)
+    #                             training work (``fit_members``)
+    workers: int = 0            # processes training members side by side (0: one per core)
 
     def validate(self) -> None:
         checks = {
@@ -87,7 +88,7 @@ class TrainSettings:
             "completion_episodes": self.completion_episodes in ("one-answer", "all-answers",
                                                                  "all-then-one"),
             "switch_epochs": self.switch_epochs >= 0,
-            "members": 1 <= self.members <= 16,
+            "members": 1 <= self.members <= 16, "workers": 0 <= self.workers <= 64,
         }
         for name, ok in checks.items():
             if not ok:
@@ -452,42 +453,117 @@ def member_seed(seed: int, i: int) -> int:
     return seed if i == 0 else int(np.random.SeedSequence([seed, i]).generate_state(1)[0])
 
 
+def member_workers(settings, n_members: int) -> int:
+    """Processes that train members side by side: ``settings.workers`` (0: one per core the
+    process may use), never more than the members; 1 where processes cannot be forked."""
+    import multiprocessing as mp
+    import os
+
+    if n_members <= 1 or "fork" not in mp.get_all_start_methods():
+        return 1
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    return max(1, min(n_members, settings.workers or cores))
+
+
+_MEMBER_JOB: dict = {}  # what a forked member process trains on (inherited, never pickled)
+
+
+def _train_member(i: int):
+    """In a forked process: train member i quietly; return its arrays, settings and summary."""
+    from threadpoolctl import threadpool_limits
+
+    import torch
+
+    torch.set_num_threads(1)
+    job = _MEMBER_JOB
+    with threadpool_limits(limits=1, user_api="blas"):
+        policy, summary = _fit(job["graph"], job["train"], job["valid"], job["settings"][i],
+                               False, None)
+    return policy.params, policy.settings, summary
+
+
+def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: int, finish,
+                  log) -> None:
+    """Train members in ``workers`` forked processes; ``finish`` each as it ends (in the
+    parent, which also writes the checkpoint of the finished members)."""
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings)
+    if log:
+        log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
+            f"side by side in {workers} processes")
+    try:
+        with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("fork")) as ex:
+            jobs = {ex.submit(_train_member, i): i for i in member_settings}
+            for job in as_completed(jobs):
+                finish(jobs[job], *job.result(), save=True)
+    finally:
+        _MEMBER_JOB.clear()
+
+
 def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
                 save_checkpoint=None, resume_from=None):
-    """Train ``settings.members`` policies (seeds ``member_seed``), one after the other, and
-    join them into one policy answering with their mean probabilities.
+    """Train ``settings.members`` policies (seeds ``member_seed``) and join them into one
+    policy answering with their mean probabilities.
 
     Each member is a whole ``_fit`` run with its own early stopping; the threshold is then
-    chosen on the ensemble's validation answers.  The checkpoint holds the finished members
-    (``member<i>.*`` arrays, their settings and summaries in ``members_done``) beside the
-    running member's state, so a resumed run skips the finished ones.
+    chosen on the ensemble's validation answers.  Members train side by side, one process
+    each, on as many cores as there are (``member_workers``; forked, so they share the
+    graph); a member's numbers do not depend on which process trained it, so the policy is
+    the same whatever the number of workers.  The checkpoint holds the finished members
+    (``member<i>.*`` arrays, their settings and summaries in ``members_done``); trained one
+    at a time, also the running member's state.  A resumed run skips the finished members
+    and continues the running one; members that were training side by side start again.
     """
     M = settings.members
-    done: list = []            # [(params, settings, summary)] of the finished members
-    start, member_resume = 0, None
+    done: dict = {}            # member -> (params, settings, summary), once finished
+    running, member_resume = None, None
     if resume_from is not None:
         arrays, meta = resume_from
-        start = int(meta.get("member", 0))
-        for j, (st, sm) in enumerate(meta.get("members_done", [])[:start]):
-            pre = f"member{j}."
-            done.append(({k[len(pre):]: np.asarray(v, np.float32) for k, v in arrays.items()
-                          if k.startswith(pre)}, st, sm))
-        member_resume = ({k: v for k, v in arrays.items() if not k.startswith("member")}, meta)
-    for i in range(start, M):
-        s_i = replace(settings, seed=member_seed(settings.seed, i), members=1,
-                      time_budget=settings.time_budget / M)
-        kept = {f"member{j}.{k}": v for j, (p, _, _) in enumerate(done) for k, v in p.items()}
-        kept_meta = {"member": i, "members_done": [[st, sm] for _, st, sm in done]}
+        for key, (st, sm) in meta.get("members_done", {}).items():
+            pre = f"member{key}."
+            done[int(key)] = ({k[len(pre):]: np.asarray(v, np.float32) for k, v in arrays.items()
+                               if k.startswith(pre)}, st, sm)
+        running = meta.get("member")
+        if running is not None and "param.W_h" in arrays:
+            member_resume = ({k: v for k, v in arrays.items() if not k.startswith("member")}, meta)
+    todo = [i for i in range(M) if i not in done]
+    workers = member_workers(settings, len(todo))
+    rounds = -(-M // max(workers, 1))
 
-        def save(arrays, meta, kept=kept, kept_meta=kept_meta):
-            save_checkpoint(arrays | kept, meta | kept_meta)
+    def member_settings(i):
+        return replace(settings, seed=member_seed(settings.seed, i), members=1,
+                       time_budget=settings.time_budget / rounds)
+
+    def kept(running_member):
+        arrays = {f"member{j}.{k}": v for j, (p, _, _) in done.items() for k, v in p.items()}
+        return arrays, {"member": running_member,
+                        "members_done": {str(j): [st, sm] for j, (_, st, sm) in done.items()}}
+
+    def finish(i, policy_params, policy_settings, summary, save: bool):
+        done[i] = (policy_params, policy_settings, summary)
+        if save and save_checkpoint is not None:
+            save_checkpoint(*kept(None))
+        if log:
+            log(f"member {i + 1} of {M} (seed {policy_settings['seed']}) done: "
+                f"{summary['epochs']} epochs, validation Hits@1 {summary['valid_hits1']:.3f}")
+
+    if workers > 1:
+        _side_by_side(graph, train_eps, valid_eps, {i: member_settings(i) for i in todo},
+                      workers, finish, log)
+    for i in (todo if workers <= 1 else []):
+        def save(arrays, meta, i=i):
+            extra_arrays, extra_meta = kept(i)
+            save_checkpoint(arrays | extra_arrays, meta | extra_meta)
 
         if log:
-            log(f"member {i + 1} of {M} (seed {s_i.seed})")
-        policy, summary = _fit(graph, train_eps, valid_eps, s_i, progress, log,
+            log(f"member {i + 1} of {M} (seed {member_settings(i).seed})")
+        policy, summary = _fit(graph, train_eps, valid_eps, member_settings(i), progress, log,
                                save if save_checkpoint is not None else None,
-                               member_resume if i == start else None)
-        done.append((policy.params, policy.settings, summary))
+                               member_resume if i == running else None)
+        finish(i, policy.params, policy.settings, summary, save=False)  # the next saves it
+    done = [done[i] for i in range(M)]
     first_settings = dict(done[0][1]) | {"members": M, "seed": settings.seed,
                                          "time_budget": settings.time_budget}
     others = [{k: v for k, v in p.items() if not k.startswith("S_")} for p, _, _ in done[1:]]

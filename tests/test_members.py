@@ -71,7 +71,7 @@ def test_an_ensemble_of_one_policy_twice_answers_as_that_policy(tiny_graph):
 
 def test_members_are_trained_stored_and_read_back(tmp_path):
     hp, questions = make_tiny_store(tmp_path)
-    summary = hp.train(questions, seed=0, epochs=2, members=2, **TINY)
+    summary = hp.train(questions, seed=0, epochs=2, members=2, workers=1, **TINY)
     assert [m["seed"] for m in summary["members"]][0] == 0 and len(summary["members"]) == 2
     assert summary["members"][1]["seed"] != 0
     assert summary["epochs"] == sum(m["epochs"] for m in summary["members"])
@@ -100,9 +100,45 @@ class Interrupt(Exception):
     pass
 
 
+def _members(hp, version):
+    with hp.store.connect() as con:
+        return pol.Policy.read(con, version).members
+
+
+def test_members_side_by_side_give_the_policy_trained_one_at_a_time(tmp_path):
+    """Each member's numbers depend only on its seed, not on the process that trained it."""
+    hp, questions = make_tiny_store(tmp_path)
+    lines = []
+    apart = hp.train(questions, seed=1, epochs=2, members=3, workers=2, log=lines.append, **TINY)
+    assert any("side by side in 2 processes" in m for m in lines)
+    alone = hp.train(questions, seed=1, epochs=2, members=3, workers=1, **TINY)
+    a, b = _members(hp, apart["version"]), _members(hp, alone["version"])
+    assert len(a) == 3 and all(same_params(x, y) for x, y in zip(a, b))
+    assert apart["valid_hits1"] == alone["valid_hits1"] and apart["threshold"] == alone["threshold"]
+
+
+def test_a_run_interrupted_after_a_member_finished_side_by_side_skips_it_on_resume(tmp_path):
+    hp, questions = make_tiny_store(tmp_path)
+    settings = dict(seed=5, epochs=2, members=3, workers=2, **TINY)
+    full = hp.train(questions, **settings)
+
+    def stop_after_first_done(message):
+        if " done: " in message:
+            raise Interrupt
+
+    with pytest.raises(Interrupt):
+        hp.train(questions, log=stop_after_first_done, **settings)
+    lines = []
+    resumed = hopper.open_store(hp.path).train(questions, resume=True, log=lines.append, **settings)
+    started = [m for m in lines if m.startswith("training members")]
+    assert len(started) == 1 and started[0].count(",") == 1  # two of three members left
+    a, b = _members(hp, full["version"]), _members(hp, resumed["version"])
+    assert len(b) == 3 and all(same_params(x, y) for x, y in zip(a, b))
+
+
 def test_a_run_interrupted_in_its_second_member_resumes_to_the_same_policy(tmp_path):
     hp, questions = make_tiny_store(tmp_path)
-    settings = dict(seed=2, epochs=2, members=2, **TINY)
+    settings = dict(seed=2, epochs=2, members=2, workers=1, **TINY)
     full = hp.train(questions, **settings)
 
     def stop_in_member_2(message):
