@@ -156,7 +156,9 @@ def _cmd_info(args, hp):
     if pol:
         sc = pol["scores"]
         print(f"policy     v{pol['version']} of {pol['versions']}, trained {pol['created_at']}, "
-              f"validation Hits@1 {sc.get('valid_hits1', 0):.3f}")
+              f"validation Hits@1 {sc.get('valid_hits1', 0):.3f}"
+              + (f", {pol['settings']['members']} members" if pol["settings"].get("members", 1) > 1
+                 else ""))
     else:
         print("policy     none (run 'hopper train')")
 

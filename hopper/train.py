@@ -66,7 +66,7 @@ class TrainSettings:
     #                              every answer's facts hidden; "all-then-one": all-answers
     #                              for the first ``switch_epochs`` epochs, then one-answer
     switch_epochs: int = 5      # all-answers epochs before "all-then-one" switches
-    members: int = 1            # policies trained from different seeds and answering together
+    members: int = 3            # policies trained from different seeds and answering together
     #                             (their mean probabilities): steadier on wordings unlike the
     #                             training questions' than any one of them, at M times the
     #                             training work (``fit_members``)
@@ -517,6 +517,7 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
     and continues the running one; members that were training side by side start again.
     """
     M = settings.members
+    started = time.monotonic()
     done: dict = {}            # member -> (params, settings, summary), once finished
     running, member_resume = None, None
     if resume_from is not None:
@@ -571,7 +572,9 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
     vh, vm, conf = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (0.0, 0.0, [])
     policy.settings["threshold"] = choose_threshold(conf)
     sums = [sm for _, _, sm in done]
-    seconds = sum(sm["seconds"] for sm in sums)
+    seconds = time.monotonic() - started  # wall time: members side by side overlap
+    if resume_from is not None:  # and the finished members' own time before the interruption
+        seconds += sum(sm["seconds"] for i, (_, _, sm) in enumerate(done) if i not in todo)
     rollouts = sum(sm["rollouts_per_second"] * sm["seconds"] for sm in sums)
     curve, offset = [], 0
     for i, sm in enumerate(sums):  # one curve, epochs counted on across the members

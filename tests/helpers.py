@@ -138,7 +138,7 @@ KESSEL_PARTS = [f"Kessel part {i:02d}" for i in range(16)]
 KESSEL_MAKERS = ["Ostrel Works", "Brannock Tooling", "Hask Dunmore", "Ardent Forge"]
 KESSEL_CITIES = ["Quarnby", "Morrowgate", "Thessaly Point", "Lunfield"]
 # training settings small enough for a run of a few seconds
-TINY = dict(rollouts=6, batch_questions=8, hidden=16, patience=10, progress=False)
+TINY = dict(rollouts=6, batch_questions=8, hidden=16, patience=10, progress=False, members=1)
 
 
 def make_tiny_store(folder: Path):
