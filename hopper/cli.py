@@ -66,7 +66,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--epochs", type=_positive("--epochs", 1, 10000), default=None)
     s.add_argument("--members", type=_positive("--members", 1, 16), default=None,
                    help="train this many policies from different seeds, to answer together "
-                        "(steadier on new wordings; M times the training time; default 1)")
+                        "side by side on the cores there are (steadier on new wordings, M "
+                        "times the training work; default 3)")
     s.add_argument("--time-budget", type=_positive("--time-budget", 0), default=None,
                    metavar="SECONDS", help="stop training after this many seconds")
     s.add_argument("--resume", action="store_true",

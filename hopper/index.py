@@ -43,15 +43,35 @@ def min_facts() -> int:
     return value
 
 
+RESCORE = 8  # past the k-th, this many more rows are scored again before the cut (see _best)
+
+
+def _best(scores: np.ndarray, rows: np.ndarray, vectors_at, query: np.ndarray, k: int) -> np.ndarray:
+    """The ``k`` best ``rows`` by ``scores`` (from a matrix product), best first, ties by row.
+
+    BLAS sums a column of a matrix product in an order that depends on how many columns it
+    holds, so one query alone and the same query in a batch get scores a few 1e-5 apart, and
+    near ties would be cut or ordered differently.  The best k + RESCORE are therefore scored
+    again one row at a time (``np.einsum``, no BLAS; ``vectors_at(i)`` gives the vectors of
+    positions i) and ranked on those scores: the answer does not depend on the batch.
+    """
+    n = len(scores)
+    k = min(k, n)
+    if k <= 0:
+        return np.zeros(0, np.int64)
+    pool = min(n, k + RESCORE)
+    cand = np.argpartition(-scores, pool - 1)[:pool] if pool < n else np.arange(n)
+    exact = np.einsum("nd,d->n", np.asarray(vectors_at(cand), np.float32),
+                      np.asarray(query, np.float32))
+    return np.asarray(rows)[cand[np.lexsort((np.asarray(rows)[cand], -exact))[:k]]].astype(np.int64)
+
+
 def exact_search(vecs: np.ndarray, query: np.ndarray, k: int) -> np.ndarray:
     """Rows of ``vecs`` with the highest inner product with ``query``, best first (numpy scan)."""
     n = len(vecs)
     if n == 0 or k <= 0:
         return np.zeros(0, np.int64)
-    sims = np.asarray(vecs) @ query
-    k = min(n, k)
-    top = np.argpartition(-sims, k - 1)[:k]
-    return top[np.argsort(-sims[top], kind="stable")].astype(np.int64)
+    return _best(np.asarray(vecs) @ query, np.arange(n), lambda i: vecs[i], query, k)
 
 
 def exact_search_many(vecs: np.ndarray, queries: np.ndarray, ks) -> list:
@@ -66,9 +86,7 @@ def exact_search_many(vecs: np.ndarray, queries: np.ndarray, ks) -> list:
         if k <= 0:
             out.append(np.zeros(0, np.int64))
             continue
-        s = sims[:, i]
-        top = np.argpartition(-s, k - 1)[:k]
-        out.append(top[np.argsort(-s[top], kind="stable")].astype(np.int64))
+        out.append(_best(sims[:, i], np.arange(n), lambda r: vecs[r], queries[i], k))
     return out
 
 
@@ -155,25 +173,33 @@ class IVFIndex:
         if k <= 0:
             return np.zeros(0, np.int64)
         nprobe = min(self.n_lists, nprobe or self.nprobe)
-        order = np.argsort(-(np.asarray(self.centroids) @ query), kind="stable")
+        order = self._probe_order(np.asarray(self.centroids) @ query, query, nprobe)
         ptr = self.list_ptr
         sizes = ptr[order + 1] - ptr[order]
         while nprobe < self.n_lists and int(sizes[:nprobe].sum()) < k:
             nprobe *= 2
         lists = order[:nprobe]
-        scores = [self.list_vecs[ptr[c]:ptr[c + 1]] @ query for c in lists]
-        rows = [self.list_rows[ptr[c]:ptr[c + 1]] for c in lists]
-        if not scores:
+        if len(lists) == 0:
             return np.zeros(0, np.int64)
-        scores = np.concatenate(scores)
-        rows = np.concatenate(rows).astype(np.int64)
-        k = min(k, len(rows))
-        if k == 0:
-            return rows
-        top = np.argpartition(-scores, k - 1)[:k]
-        # ties broken by row, as the exact scan's stable sort does
-        top = top[np.lexsort((rows[top], -scores[top]))]
-        return rows[top]
+        scores = np.concatenate([self.list_vecs[ptr[c]:ptr[c + 1]] @ query for c in lists])
+        return self._best_in(lists, scores, query, k)
+
+    def _best_in(self, lists, scores, query, k) -> np.ndarray:
+        """The k best rows of the probed ``lists`` (``scores`` in list order), ties by row."""
+        ptr = self.list_ptr
+        at = np.concatenate([np.arange(ptr[c], ptr[c + 1]) for c in lists])  # list_vecs rows
+        return _best(scores, np.asarray(self.list_rows[at], np.int64),
+                     lambda i: self.list_vecs[at[i]], query, k)
+
+    def _probe_order(self, cscores: np.ndarray, query: np.ndarray, nprobe: int) -> np.ndarray:
+        """Lists by their centroid's score, best first; the first ones (what is probed, with
+        room to double) scored again one at a time so the order does not depend on the batch."""
+        order = np.argsort(-cscores, kind="stable")
+        head = order[:min(len(order), 2 * nprobe + RESCORE)]
+        exact = np.einsum("nd,d->n", np.asarray(self.centroids[np.sort(head)], np.float32),
+                          np.asarray(query, np.float32))
+        head = np.sort(head)[np.lexsort((np.sort(head), -exact))]
+        return np.concatenate([head, order[len(head):]])
 
     def search_many(self, queries: np.ndarray, ks) -> list:
         """``search`` for many queries: each probed list is scored once for all the queries
@@ -185,7 +211,8 @@ class IVFIndex:
         if m == 0:
             return []
         nprobe0 = min(self.n_lists, self.nprobe)
-        order = np.argsort(-(queries @ np.asarray(self.centroids).T), axis=1, kind="stable")
+        cscores = queries @ np.asarray(self.centroids).T
+        order = [self._probe_order(cscores[i], queries[i], nprobe0) for i in range(m)]
         ptr = self.list_ptr
         probes = []
         for i in range(m):
@@ -193,7 +220,7 @@ class IVFIndex:
             sizes = ptr[order[i] + 1] - ptr[order[i]]
             while nprobe < self.n_lists and int(sizes[:nprobe].sum()) < ks[i]:
                 nprobe *= 2
-            probes.append(order[i, :nprobe])
+            probes.append(order[i][:nprobe])
         who: dict = {}  # list -> the queries probing it
         for i, lists in enumerate(probes):
             for c in lists.tolist():
@@ -210,14 +237,7 @@ class IVFIndex:
                 out.append(np.zeros(0, np.int64))
                 continue
             scores = np.concatenate([part[(i, c)] for c in lists.tolist()])
-            rows = np.concatenate([self.list_rows[ptr[c]:ptr[c + 1]] for c in lists]).astype(np.int64)
-            k = min(k, len(rows))
-            if k == 0:
-                out.append(rows)
-                continue
-            top = np.argpartition(-scores, k - 1)[:k]
-            top = top[np.lexsort((rows[top], -scores[top]))]
-            out.append(rows[top])
+            out.append(self._best_in(lists, scores, queries[i], k))
         return out
 
     # -- files: plain .npy (no pickle) plus a small JSON ------------------------------------

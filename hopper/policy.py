@@ -33,8 +33,9 @@ probabilities.
     ensemble   pi(a | state) = 1/M sum_m pi_m(a | state_m)                 (M members trained
                                                                            from different seeds,
                                                                            each with its own
-                                                                           memory; M = 1 by
-                                                                           default)
+                                                                           memory; M = 3 by
+                                                                           default, see
+                                                                           train.fit_members)
 
 ``N_c``, ``N_z`` and ``N_s`` are learned entity vectors (setting ``entity_embed``, off by default): one row
 per entity known at training time plus a last row shared by every other entity.  Off, both have

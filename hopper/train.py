@@ -11,9 +11,9 @@ kind, fading to 0), less ``fetch_cost`` per fetch.  With r_t the reward at hop t
 and the loss minimised is  - sum_t (G_t - b_t) log pi(a_t | s_t) - beta * H(pi(. | s_t))
 (see ``reinforce_loss``; by default each question's advantages are divided by the spread of
 its rollouts' returns).  Adam, gradient clipping, mini-batches of questions, early stopping on
-validation Hits@1 from beam search, all seeded.  With ``members`` > 1 the run trains that many
-policies from different seeds, one after the other, and answers with their mean probabilities
-(``policy.mixture_step``; ``fit_members``).
+validation Hits@1 from beam search, all seeded.  With ``members`` > 1 (default 3) the run trains
+that many policies from different seeds, side by side where there are cores for it, and they
+answer with their mean probabilities (``fit_members``, ``policy.mixture_step``).
 """
 from __future__ import annotations
 

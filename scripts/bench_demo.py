@@ -24,8 +24,9 @@ def main() -> int:
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--split", choices=("test", "valid"), default="test",
                     help="valid: the split settings are chosen on (its new wordings are not the test's)")
-    ap.add_argument("--members", type=int, default=1,
-                    help="policies trained from different seeds that answer together")
+    ap.add_argument("--members", type=int, default=None,
+                    help="policies trained from different seeds that answer together "
+                         "(default: the training default, 3)")
     args = ap.parse_args()
     Path(args.store).parent.mkdir(parents=True, exist_ok=True)
     hp = hopper.open_store(args.store)
@@ -36,7 +37,8 @@ def main() -> int:
     if args.retrain or hp.info()["policy"] is None:
         t0 = time.monotonic()
         summary = hp.train(DEMO / "questions_train.jsonl", valid=DEMO / "questions_valid.jsonl",
-                           seed=args.seed, members=args.members, log=lambda m: print("  " + m, file=sys.stderr))
+                           seed=args.seed, **({} if args.members is None else {"members": args.members}),
+                           log=lambda m: print("  " + m, file=sys.stderr))
         train_s = time.monotonic() - t0
         print(f"training: {summary['epochs']} epochs, {train_s:.0f} s, "
               f"{summary['rollouts_per_second']} rollouts/s, validation Hits@1 {summary['valid_hits1']:.3f}")
