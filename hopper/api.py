@@ -365,7 +365,7 @@ class Hopper:
                     label="training reward (mean)" if first else None)
             ax.plot(ep, [c["valid_hits1"] for c in part], marker="s", color="C1",
                     label="validation Hits@1" if first else None)
-        ax.set_xlabel("epoch" if len(members) == 1 else f"epoch ({len(members)} members in turn)")
+        ax.set_xlabel("epoch" if len(members) == 1 else f"epoch ({len(members)} members, each from its first)")
         ax.set_ylim(0, 1.02)
         ax.set_title(f"hopper policy v{version}")
         ax.grid(alpha=0.3)

@@ -587,9 +587,6 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
                "members": [{"seed": st["seed"], "epochs": sm["epochs"],
                             "valid_hits1": sm["valid_hits1"]} for _, st, sm in done],
                "curve": curve}
-    if log:
-        log("members' validation Hits@1 " + ", ".join(f"{m['valid_hits1']:.3f}" for m in summary["members"])
-            + f"; together {vh:.3f}")
     policy.scores = {k: v for k, v in summary.items() if k != "curve"}
     return policy, summary
 
