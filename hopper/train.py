@@ -468,12 +468,29 @@ def member_workers(settings, n_members: int) -> int:
 _MEMBER_JOB: dict = {}  # what a forked member process trains on (inherited, never pickled)
 
 
+def _die_with_parent(parent: int) -> None:
+    """Ask Linux to kill this process when its parent dies (a killed ``train`` must not leave
+    members training on); where that cannot be asked, nothing happens."""
+    import os
+    import signal
+
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # 1: PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        return
+    if os.getppid() != parent:  # the parent died before the request took effect
+        os._exit(1)
+
+
 def _train_member(i: int):
     """In a forked process: train member i quietly; return its arrays, settings and summary."""
     from threadpoolctl import threadpool_limits
 
     import torch
 
+    _die_with_parent(_MEMBER_JOB["parent"])
     torch.set_num_threads(1)
     job = _MEMBER_JOB
     with threadpool_limits(limits=1, user_api="blas"):
@@ -489,7 +506,10 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings)
+    import os
+
+    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings,
+                       parent=os.getpid())
     if log:
         log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
             f"side by side in {workers} processes")

@@ -218,7 +218,7 @@ def checkpoint_epoch(store: Path) -> int:
 
 
 def case_train(store: Path, questions: Path, r: int) -> tuple[str | None, str]:
-    args = ["--questions", questions, "--epochs", "8", "--seed", str(r), "--store", store]
+    args = ["--questions", questions, "--epochs", "8", "--seed", str(r), "--members", "1", "--store", store]
     proc = subprocess.Popen([str(HOPPER), "train", *map(str, args)], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL, env=env())
     target = random.randint(0, 8)

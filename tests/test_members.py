@@ -82,7 +82,7 @@ def test_members_are_trained_stored_and_read_back(tmp_path):
     assert len(policy.members) == 2 and policy.settings["members"] == 2
     assert not same_params(policy.members[0], policy.members[1])  # two seeds, two policies
     # the first member is the policy a one-member run with the same seed trains
-    alone = hp.train(questions, seed=0, epochs=2, **TINY)
+    alone = hp.train(questions, seed=0, epochs=2, members=1, **TINY)
     with hp.store.connect() as con:
         single = pol.Policy.read(con, alone["version"])
     assert len(single.members) == 1
@@ -158,3 +158,54 @@ def test_a_run_interrupted_in_its_second_member_resumes_to_the_same_policy(tmp_p
         a, b = pol.Policy.read(con, full["version"]), pol.Policy.read(con, resumed["version"])
     assert all(same_params(x, y) for x, y in zip(a.members, b.members)) and len(b.members) == 2
     assert resumed["valid_hits1"] == full["valid_hits1"]
+
+
+def _children(pid: int) -> list:
+    """Processes whose parent is ``pid`` (from /proc)."""
+    import os
+
+    out = []
+    for name in os.listdir("/proc"):
+        if name.isdigit():
+            try:
+                with open(f"/proc/{name}/stat", encoding="utf-8") as f:
+                    stat = f.read()
+            except OSError:
+                continue
+            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
+                out.append(int(name))
+    return out
+
+
+@pytest.mark.skipif(not __import__("os").path.isdir("/proc/self"), reason="needs Linux /proc")
+def test_members_training_side_by_side_die_with_a_killed_train(tmp_path):
+    """SIGKILL cannot be caught: the members' processes ask the kernel to kill them with their
+    parent (PR_SET_PDEATHSIG), so a killed ``train`` leaves nothing training on."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from helpers import REPO, hopper_cmd, hopper_env
+
+    hp, questions = make_tiny_store(tmp_path)
+    proc = subprocess.Popen(hopper_cmd("train", "--questions", questions, "--epochs", "10000",
+                                       "--members", "2", "--store", hp.path),
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            env=hopper_env(), cwd=REPO)
+    deadline = time.monotonic() + 300
+    kids = []
+    while len(kids) < 2 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.2)
+        kids = _children(proc.pid)
+    assert len(kids) >= 2, "the members did not start side by side"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    deadline = time.monotonic() + 30
+    alive = kids
+    while alive and time.monotonic() < deadline:
+        time.sleep(0.2)
+        alive = [k for k in kids if os.path.exists(f"/proc/{k}") and
+                 open(f"/proc/{k}/stat", encoding="utf-8").read().rsplit(")", 1)[1].split()[0] != "Z"]
+    assert not alive, f"member processes {alive} outlived the killed train"

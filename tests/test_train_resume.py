@@ -170,7 +170,7 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
     old = active_version(hp)
     n_versions = hp.info()["policy"]["versions"]
     store, cp = hp.path, hp.store.checkpoint_path
-    args = ["--questions", questions, "--seed", "1", "--epochs", "8", "--store", store]
+    args = ["--questions", questions, "--seed", "1", "--epochs", "8", "--members", "1", "--store", store]
     log = open(store.parent / "train.log", "w+", encoding="utf-8")
     proc = subprocess.Popen([sys.executable, "-c", STOP_AFTER_CHECKPOINT, "train", *map(str, args)],
                             stdout=log, stderr=log, env=hopper_env(STOP_AFTER_EPOCH="1"), cwd=REPO)
