@@ -503,22 +503,29 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
                   log) -> None:
     """Train members in ``workers`` forked processes; ``finish`` each as it ends (in the
     parent, which also writes the checkpoint of the finished members)."""
+    import gc
     import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor, as_completed
-
     import os
+    from concurrent.futures import ProcessPoolExecutor, as_completed
 
     _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings,
                        parent=os.getpid())
     if log:
         log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
             f"side by side in {workers} processes")
+    # Objects the parent holds (an encoder's onnxruntime session, say) must never be collected
+    # in a child: their destructors wait on threads that do not exist after fork (a member
+    # hung so).  gc.freeze() moves everything alive now out of the collector's sight, as the
+    # gc module's documentation advises before fork() without exec().
+    gc.collect()
+    gc.freeze()
     try:
         with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("fork")) as ex:
             jobs = {ex.submit(_train_member, i): i for i in member_settings}
             for job in as_completed(jobs):
                 finish(jobs[job], *job.result(), save=True)
     finally:
+        gc.unfreeze()
         _MEMBER_JOB.clear()
 
 
