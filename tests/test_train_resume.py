@@ -204,7 +204,7 @@ def test_train_killed_with_sigkill_keeps_the_old_policy_and_resume_finishes(tiny
     assert active_version(hp) == n_versions + 1 and not cp.exists()
     # the same settings in one uninterrupted run (in this process) give the same policy, and
     # the same training rewards epoch by epoch (those depend on every sampled walk)
-    full = hp.train(questions, seed=1, epochs=8)
+    full = hp.train(questions, seed=1, epochs=8, members=1)
     assert same_params(policy_params(hp, n_versions + 1), policy_params(hp, full["version"]))
     assert [c["train_reward"] for c in resumed["curve"]] == [c["train_reward"] for c in full["curve"]]
     assert len(full["curve"]) == 8
