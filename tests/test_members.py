@@ -184,7 +184,6 @@ def test_members_training_side_by_side_die_with_a_killed_train(tmp_path):
     import os
     import signal
     import subprocess
-    import sys
     import time
 
     from helpers import REPO, hopper_cmd, hopper_env
