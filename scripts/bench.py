@@ -303,7 +303,7 @@ def main():
             f"+ {per_cache:.0f} B/fact of cache beside it")
         sc = policy_scores(info["store"])
         if sc:
-            add("training rollouts/s (stored with the policy)", s, f"{sc.get('rollouts_per_second', 0):.0f}",
+            add("training rollouts/s (stored with the policy; members side by side: all together)", s, f"{sc.get('rollouts_per_second', 0):.0f}",
                 "-", "-", "-", f"{sc.get('epochs')} epochs in {sc.get('seconds')} s, "
                 f"valid Hits@1 {sc.get('valid_hits1', 0):.3f}")
 
