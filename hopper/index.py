@@ -195,11 +195,10 @@ class IVFIndex:
         """Lists by their centroid's score, best first; the first ones (what is probed, with
         room to double) scored again one at a time so the order does not depend on the batch."""
         order = np.argsort(-cscores, kind="stable")
-        head = order[:min(len(order), 2 * nprobe + RESCORE)]
-        exact = np.einsum("nd,d->n", np.asarray(self.centroids[np.sort(head)], np.float32),
+        head = np.sort(order[:min(len(order), 2 * nprobe + RESCORE)])
+        exact = np.einsum("nd,d->n", np.asarray(self.centroids[head], np.float32),
                           np.asarray(query, np.float32))
-        head = np.sort(head)[np.lexsort((np.sort(head), -exact))]
-        return np.concatenate([head, order[len(head):]])
+        return np.concatenate([head[np.lexsort((head, -exact))], order[len(head):]])
 
     def search_many(self, queries: np.ndarray, ks) -> list:
         """``search`` for many queries: each probed list is scored once for all the queries

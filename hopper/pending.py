@@ -37,8 +37,9 @@ class PendingVectors:
     memory: its write transaction reads them back with DuckDB (``sql_source``), so a load's
     memory does not grow with the number of facts.  A re-run after an interruption embeds
     only the texts whose keys are missing.  Once the load has committed, the chunks it wrote
-    or used are removed (another load's stay), and the folder when empty.  Where the folder cannot be written, the chunks go to a private temporary
-    folder instead (the load works, it just cannot resume).
+    or used are removed (another load's stay), and the folder when empty.  Where the folder
+    cannot be written, the chunks go to a private temporary folder instead (the load works,
+    it just cannot resume).
     """
 
     def __init__(self, store_path, model_sha256: str, precision: str = "fp32"):
