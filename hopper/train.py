@@ -490,7 +490,6 @@ def _train_member(i: int):
 
     import torch
 
-    _die_with_parent(_MEMBER_JOB["parent"])
     torch.set_num_threads(1)
     job = _MEMBER_JOB
     with threadpool_limits(limits=1, user_api="blas"):
@@ -508,8 +507,7 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
     import os
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings,
-                       parent=os.getpid())
+    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings)
     if log:
         log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
             f"side by side in {workers} processes")
@@ -520,7 +518,10 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
     gc.collect()
     gc.freeze()
     try:
-        with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("fork")) as ex:
+        # the request to die with the parent is made as each process starts, before it waits
+        # for a member to train: one still waiting when its parent is killed would wait forever
+        with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("fork"),
+                                 initializer=_die_with_parent, initargs=(os.getpid(),)) as ex:
             jobs = {ex.submit(_train_member, i): i for i in member_settings}
             for job in as_completed(jobs):
                 finish(jobs[job], *job.result(), save=True)

@@ -186,7 +186,9 @@ def _usable_cores() -> int:
                     reason="needs Linux /proc and two cores (members train side by side)")
 def test_members_training_side_by_side_die_with_a_killed_train(tmp_path):
     """SIGKILL cannot be caught: the members' processes ask the kernel to kill them with their
-    parent (PR_SET_PDEATHSIG), so a killed ``train`` leaves nothing training on."""
+    parent (PR_SET_PDEATHSIG), so a killed ``train`` leaves nothing training on.  The kill
+    comes as soon as both processes exist, often before they were given a member to train:
+    those must go too (asking only when a member starts left them waiting for ever)."""
     import signal
     import subprocess
     import time
