@@ -386,6 +386,15 @@ class Candidates:
     feats: np.ndarray   # cheap features, float32 [C, N_CHEAP]
     stop_feats: np.ndarray  # float32 [N_STOP]
     here: int = -1      # the entity the walker stands on
+    path: tuple = ()    # the (relation, direction) kinds fetched so far (``path_kinds``)
+
+
+def path_kinds(graph: Graph, walker: Walker) -> tuple:
+    """The kinds (relation * 2 + direction) of the facts a walker fetched, in order: each
+    fact was fetched from the entity the walker stood on before it (direction 0 when that
+    was the subject)."""
+    return tuple(int(graph.rel[f]) * 2 + int(graph.subj[f] != e)
+                 for f, e in zip(walker.fetched, walker.visited))
 
 
 def _preranked_many(graph: Graph, ents: list, qvecs: np.ndarray, cap: int) -> list:
@@ -604,7 +613,8 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
         np.log1p(deg_here) / 5.0,
         cover, cover - before], axis=1).astype(np.float32) if B else np.zeros((0, N_STOP), np.float32)
     return {"seg": seg, "facts": facts, "dirs": dirs, "nexts": nexts, "feats": feats,
-            "counts": counts, "stop_feats": stop_feats, "here": here}
+            "counts": counts, "stop_feats": stop_feats, "here": here,
+            "paths": [path_kinds(graph, w) for w in walkers]}
 
 
 def candidates_batch(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, max_hops: int,
@@ -628,7 +638,8 @@ def candidates_batch(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
     facts[seg, pos], dirs[seg, pos], nexts[seg, pos] = a["facts"], a["dirs"], a["nexts"]
     feats[seg, pos], mask[seg, pos] = a["feats"], True
     return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask,
-            "stop_feats": a["stop_feats"], "here": a["here"], "nexts": nexts, "counts": counts}
+            "stop_feats": a["stop_feats"], "here": a["here"], "nexts": nexts, "counts": counts,
+            "paths": a["paths"]}
 
 
 def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hops: int,
@@ -643,7 +654,7 @@ def candidates(graph: Graph, walker: Walker, qvec: np.ndarray, hop: int, max_hop
     a = candidate_arrays(graph, [walker], np.asarray(qvec, np.float32)[None, :], hop, max_hops,
                          [linked], [hidden], [prerank_cache], dense=dense, cap=cap)
     return Candidates(a["facts"], a["dirs"], a["nexts"], a["feats"], a["stop_feats"][0],
-                      walker.entity)
+                      walker.entity, a["paths"][0])
 
 
 def pad_candidates(cands: list) -> dict:
@@ -660,7 +671,7 @@ def pad_candidates(cands: list) -> dict:
     stop = np.stack([c.stop_feats for c in cands]) if cands else np.zeros((0, N_STOP), np.float32)
     here = np.array([c.here for c in cands], np.int64)
     return {"facts": facts, "dirs": dirs, "feats": feats, "mask": mask, "stop_feats": stop,
-            "here": here}
+            "here": here, "paths": [c.path for c in cands]}
 
 
 MASK = "X"  # stands in for the entity names of a question in the policy's view of it
@@ -754,6 +765,56 @@ def one_answer_each(graph: Graph, eps: list) -> list:
                                hidden=frozenset(by_answer[a]),
                                stated=frozenset(by_answer) - {a}, prerank={}))
     return out
+
+
+CHAIN_REACH = 200_000  # entities a question's chain search may hold at one depth before giving up
+
+
+def answer_chains(graph: Graph, ep: Episode, max_hops: int) -> set:
+    """The kind sequences (relation * 2 + direction per hop) of the shortest paths from a
+    question's start to one of its answers: breadth first, every sequence of kinds kept
+    apart with the entities it reaches.  Empty when no answer lies within ``max_hops`` or
+    the search passes ``CHAIN_REACH`` entities at one depth (a hub-heavy question)."""
+    gold = np.fromiter(ep.gold, np.int64)
+    level = {(): np.unique(np.asarray(ep.starts, np.int64))}
+    for _ in range(max_hops):
+        nxt: dict = {}
+        for seq, ents in level.items():
+            lo = graph.adj_ptr[ents].astype(np.int64)
+            lens = (graph.adj_ptr[ents + 1] - graph.adj_ptr[ents]).astype(np.int64)
+            if not lens.sum():
+                continue
+            pos = np.repeat(lo - np.cumsum(lens) + lens, lens) + np.arange(int(lens.sum()))
+            facts = np.asarray(graph.adj_fact[pos], np.int64)
+            dirs = np.asarray(graph.adj_dir[pos], np.int64)
+            keep = ~np.isin(facts, np.fromiter(ep.hidden, np.int64)) if ep.hidden else slice(None)
+            facts, dirs = facts[keep], dirs[keep]
+            kinds = graph.rel[facts].astype(np.int64) * 2 + dirs
+            far = np.where(dirs == 0, graph.obj[facts], graph.subj[facts]).astype(np.int64)
+            for k in np.unique(kinds):
+                nxt[seq + (int(k),)] = np.unique(far[kinds == k])
+        found = {seq for seq, ents in nxt.items() if np.isin(ents, gold).any()}
+        if found:
+            return found
+        if not nxt or sum(len(e) for e in nxt.values()) > CHAIN_REACH:
+            return set()
+        level = nxt
+    return set()
+
+
+def question_chains(graph: Graph, eps: list, max_hops: int, min_share: float = 0.02) -> list:
+    """The chains training questions are answered by: kind sequences that are a shortest
+    answer path of at least ``min_share`` of the questions in words (completion questions,
+    whose paths are the walk's to find, take no part), most common first.  A path that
+    reaches an answer by coincidence (a supplier shipping from the city it is based in)
+    stays under the share unless it is common."""
+    from collections import Counter
+
+    asked = [ep for ep in eps if ep.qrel < 0 and ep.starts and ep.gold]
+    counts = Counter(seq for ep in asked for seq in answer_chains(graph, ep, max_hops))
+    least = max(1.0, min_share * len(asked))
+    return [list(seq) for seq, c in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+            if c >= least]
 
 
 def episodes(graph: Graph, questions: list, encode, hide_answers: bool = False) -> list:

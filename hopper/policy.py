@@ -21,13 +21,20 @@ probabilities.
                                                                            vector; n_a: where it
                                                                            leads)
     score      s_a = z_t . c_a / sqrt(H) + f_a . w_f + k_a w_known[t, 0]   (f_a: cheap features;
-                                                                           k_a: 1 if a leads to an
+                     + l_a w_chain[t, 0]                                   k_a: 1 if a leads to an
                                                                            answer a fact states:
                                                                            a way on at hop 0, a
-                                                                           dead end at the last)
+                                                                           dead end at the last;
+                                                                           l_a: 1 if the kinds
+                                                                           fetched, then a's,
+                                                                           begin a chain training
+                                                                           questions are answered
+                                                                           by, see chain_marks)
     STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop + k_0 w_known[t, 1]
-                                                                          (g_t: cheap features;
-                                                                           k_0: stands on one)
+                     + l_0 w_chain[t, 1]                                  (g_t: cheap features;
+                                                                           k_0: stands on one;
+                                                                           l_0: the kinds fetched
+                                                                           are such a chain)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
     ensemble   pi(a | state) = 1/M sum_m pi_m(a | state_m)                 (M members trained
@@ -68,11 +75,12 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
     "U_h": ("H", "H"), "U_c": ("H", "H"),
     "N_c": ("N1", "H"), "N_z": ("N1", "H"), "N_s": ("N1", "H"),
     "w_known": ("T", 2),
+    "chains": ("S", "T1"), "w_chain": ("T", 2),
 }
 
 
 TEXT_INPUTS = ("W_v", "W_u", "W_e")  # the weights that read unit-length sentence vectors
-FIXED = ("q_mean", "q_proj", "w_vocab", "w_mean", "w_scale")  # set from the training questions
+FIXED = ("q_mean", "q_proj", "w_vocab", "w_mean", "w_scale", "chains")  # set from the training questions
 WORD_TAU = 0.05   # temperature of a question word's soft match to the training words
 WORD_NULL = 0.5   # a word matching no training word better than this cosine counts for none
 VIEWS = ("sentence", "words", "both")  # what of the question the policy reads
@@ -207,29 +215,34 @@ def question_features(P: dict, qstate, word_vecs) -> np.ndarray:
 
 
 def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: int,
-                basis=None, words=None, n_entities: int = 0) -> dict:
+                basis=None, words=None, n_entities: int = 0, chains=None) -> dict:
     """Small random weights (scaled by fan-in), as float32 numpy arrays.
 
     ``basis`` is (q_mean, q_proj) from ``question_basis``; without it questions pass as they
     are.  ``words`` is (w_vocab, w_mean, w_scale) from ``word_basis``; without it no words.
     ``n_entities`` > 0 gives that many rows of learned entity vectors (zero at the start).
+    ``chains`` are the kind sequences training questions are answered by
+    (``env.question_chains``; kinds as rows of ``E``); without them the chain marks are 0.
     """
     rng = np.random.default_rng(seed)
     q_mean, q_proj = basis if basis is not None else (np.zeros(dim, np.float32),
                                                       np.eye(dim, dtype=np.float32))
     w_vocab, w_mean, w_scale = words if words is not None else (
         np.zeros((0, dim), np.float32), np.zeros(0, np.float32), np.zeros(0, np.float32))
+    table = chain_table(chains or [], max_hops)
     sizes = {"D": dim, "H": hidden, "T": max_hops + 1, "R2": 2 * n_relations + 1,
              "R1": n_relations + 1, "K": q_proj.shape[1], "V": w_vocab.shape[0],
-             "X": q_proj.shape[1] + w_vocab.shape[0], "N1": n_entities + 1}
+             "X": q_proj.shape[1] + w_vocab.shape[0], "N1": n_entities + 1,
+             "S": table.shape[0], "T1": max_hops}
     params = {"q_mean": np.asarray(q_mean, np.float32), "q_proj": np.asarray(q_proj, np.float32),
               "w_vocab": np.asarray(w_vocab, np.float32), "w_mean": np.asarray(w_mean, np.float32),
-              "w_scale": np.asarray(w_scale, np.float32)}
+              "w_scale": np.asarray(w_scale, np.float32), "chains": table}
     for name, shape in PARAM_SHAPES.items():
         if name in FIXED:
             continue
         shp = tuple(sizes.get(s, s) if isinstance(s, str) else s for s in shape)
-        if name.startswith("b_") or name in ("w_g", "Q", "u_stop", "N_c", "N_z", "N_s", "w_known"):
+        if name.startswith("b_") or name in ("w_g", "Q", "u_stop", "N_c", "N_z", "N_s", "w_known",
+                                             "w_chain"):
             params[name] = np.zeros(shp, np.float32)
         else:
             fan_in = shp[-2] if len(shp) >= 2 else shp[0]
@@ -248,7 +261,46 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
     params["w_f"][9] = 10.0  # prefer facts that make the path cover more of the question
     params["b_stop"][0] = 1.5  # STOP keeps a fair share (~1/3) at every hop ...
     params["w_g"][0] = -4.0    # ... but the first: the entity the question names is not its answer
+    params["w_chain"][:] = 1.0  # follow the chains training questions are answered by, and
+    #                             stop where one is complete
     return params
+
+
+def chain_table(chains: list, max_hops: int) -> np.ndarray:
+    """Kind sequences as a [S, max_hops] float32 table (kinds as rows of ``E``, -1 padding):
+    the form a policy stores them in."""
+    table = np.full((len(chains), max_hops), -1, np.float32)
+    for i, c in enumerate(chains):
+        table[i, :len(c)] = c[:max_hops]
+    return table
+
+
+def chain_marks(P: dict, slots: np.ndarray, paths: list, mask: np.ndarray):
+    """(k_a [B, C], k_0 [B]): 1 where fetching candidate a keeps the walk on a chain some
+    training question is answered by (its kinds so far, then a's, begin one), and where the
+    kinds fetched so far are such a chain, whole.
+
+    ``slots`` [B, C] are the candidates' kinds and ``paths`` each walker's kinds so far, both
+    as rows of ``E``.  Sequences are compared as integers (kind + 1 in base 2R + 2 per hop).
+    """
+    table = np.asarray(P["chains"].detach() if hasattr(P["chains"], "detach") else P["chains"])
+    B, C = slots.shape
+    if table.shape[0] == 0:
+        return np.zeros((B, C), np.float32), np.zeros(B, np.float32)
+    base = np.int64(P["E"].shape[0] + 1)
+    pos = base ** np.arange(table.shape[1], dtype=np.int64)
+    digits = table.astype(np.int64) + 1                   # 0 past a chain's end
+    whole = (digits * pos).sum(1)
+    prefixes = np.unique(np.concatenate([(digits[:, :n] * pos[:n]).sum(1)
+                                         for n in range(1, table.shape[1] + 1)]))
+    code = np.array([sum((k + 1) * int(pos[i]) for i, k in enumerate(p)) for p in paths],
+                    np.int64)
+    depth = np.array([len(p) for p in paths], np.int64)
+    k_0 = np.isin(code, whole).astype(np.float32) * (depth > 0)
+    fits = depth < table.shape[1]
+    nxt = code[:, None] + (slots.astype(np.int64) + 1) * pos[np.minimum(depth, len(pos) - 1)][:, None]
+    k_a = (np.isin(nxt, prefixes) & mask & fits[:, None]).astype(np.float32)
+    return k_a, k_0
 
 
 def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> np.ndarray:
@@ -299,7 +351,7 @@ class Reprs:
 
 
 def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, here_row=None,
-           start_row=None, known=None):
+           start_row=None, known=None, chain=None):
     """Log-probabilities over [STOP, candidates...] for a batch of walkers.
 
     x [B, X] (from ``question_features``), h [B, H], here [B, D] (the vector of the entity each walker stands on), qrel [B]
@@ -307,7 +359,8 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
     (False = padding), stop_feats [B, G], here_row / start_row [B] (rows of ``N_z`` / ``N_s``:
     where each walker stands / started; None: the shared row), known: (k_a [B, C], k_0 [B]),
     1 where a candidate leads to / the walker stands on an answer a visible fact already states
-    (completion questions; None: none)  ->  log pi [B, 1 + C].
+    (completion questions; None: none), chain: (k_a [B, C], k_0 [B]) from ``chain_marks``
+    (None: none)  ->  log pi [B, 1 + C].
     """
     n_z = P["N_z"][ops.asarray(here_row)] if here_row is not None else P["N_z"][-1]
     n_z = n_z + (P["N_s"][ops.asarray(start_row)] if start_row is not None else P["N_s"][-1])
@@ -325,6 +378,10 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
         wk = P["w_known"][ops.asarray(hop)]
         s = s + ops.asarray(known[0]) * wk[:, 0:1]
         s_stop = s_stop + ops.asarray(known[1])[:, None] * wk[:, 1:2]
+    if chain is not None:  # weights per hop
+        wc = P["w_chain"][ops.asarray(hop)]
+        s = s + ops.asarray(chain[0]) * wc[:, 0:1]
+        s_stop = s_stop + ops.asarray(chain[1])[:, None] * wc[:, 1:2]
     s = ops.where(ops.asarray(mask), s, NEG)
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 
@@ -417,16 +474,9 @@ class Policy:
             m, name = (int(m[1:]), rest) if rest and m[:1] == "m" and m[1:].isdigit() else (0, name)
             by_member.setdefault(m, {})[name] = \
                 np.frombuffer(data, dtype="<f4").reshape(shape).astype(np.float32)
+        for params in by_member.values():
+            _fill_older(params)
         params = by_member.get(0, {})
-        if "w_vocab" not in params and "q_proj" in params:  # made before policies read words
-            dim = params["q_proj"].shape[0]
-            params |= {"w_vocab": np.zeros((0, dim), np.float32),
-                       "w_mean": np.zeros(0, np.float32), "w_scale": np.zeros(0, np.float32)}
-        if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
-            hid = params["W_h"].shape[0]
-            params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}
-        if "w_known" not in params and "b_hop" in params:  # made before policies saw stated answers
-            params["w_known"] = np.zeros((params["b_hop"].shape[0], 2), np.float32)
         missing = set(PARAM_SHAPES) - set(params)
         if missing:
             from .errors import InputError
@@ -437,6 +487,24 @@ class Policy:
         if known is not None:
             known[key] = policy
         return policy
+
+
+def _fill_older(params: dict) -> None:
+    """Give a policy stored by an older hopper the arrays it lacks, set so they change nothing."""
+    if "w_vocab" not in params and "q_proj" in params:  # made before policies read words
+        dim = params["q_proj"].shape[0]
+        params |= {"w_vocab": np.zeros((0, dim), np.float32),
+                   "w_mean": np.zeros(0, np.float32), "w_scale": np.zeros(0, np.float32)}
+    if "N_c" not in params and "W_h" in params:  # made before policies could learn entities
+        hid = params["W_h"].shape[0]
+        params |= {k: np.zeros((1, hid), np.float32) for k in ("N_c", "N_z", "N_s")}
+    if "b_hop" in params:
+        T = params["b_hop"].shape[0]
+        if "w_known" not in params:  # made before policies saw stated answers
+            params["w_known"] = np.zeros((T, 2), np.float32)
+        if "chains" not in params:  # made before policies knew the questions' chains
+            params |= {"chains": np.zeros((0, T - 1), np.float32),
+                       "w_chain": np.zeros((T, 2), np.float32)}
 
 
 def mixture_step(members: list, ops, graph, relmap: np.ndarray, xs: list, hs: list, hop,
@@ -498,7 +566,18 @@ def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=N
         k_c[at] = [int(n) in stated[i] for i, n in zip(at // C, nexts)]
         k_0 = np.array([int(e) in st for e, st in zip(batch["here"], stated)], np.float32)
         known = (k_c.reshape(B, C), k_0)
+    chain = None
+    if P["chains"].shape[0] and "paths" in batch:
+        slots = np.full(B * C, -1, np.int64)
+        slots[at] = slot
+        n_pol = (P["E"].shape[0] - 1) // 2
+        paths = []
+        for p in batch["paths"]:
+            kinds = np.asarray(p, np.int64)
+            prel = relmap[kinds // 2] if len(relmap) else np.full(len(kinds), -1)
+            paths.append(tuple(relation_slot(prel, kinds % 2, n_pol).tolist()))
+        chain = chain_marks(P, slots.reshape(B, C), paths, np.asarray(batch["mask"]))
     logp = scores(P, ops, x, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]), here_row,
-                  start_row, known)
+                  start_row, known, chain)
     return logp, cand

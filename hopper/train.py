@@ -71,6 +71,10 @@ class TrainSettings:
     #                             training questions' than any one of them, at M times the
     #                             training work (``fit_members``)
     workers: int = 0            # processes training members side by side (0: one per core)
+    chains: bool = True         # the policy sees which kind sequences (made by > based in ...)
+    #                             answer the training questions (env.question_chains): whether
+    #                             a fetch keeps the walk on one and whether the walk has
+    #                             completed one (policy.chain_marks)
 
     def validate(self) -> None:
         checks = {
@@ -650,8 +654,13 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         if settings.question_view != "sentence":
             *words, vocabulary = pol.word_basis([e.words for e in questions],
                                                 [e.word_vecs for e in questions])
+        chains = None
+        if settings.chains:
+            from .env import question_chains
+
+            chains = question_chains(graph, questions, settings.max_hops)
         init = pol.init_params(dim, settings.hidden, n_rel, settings.max_hops, settings.seed,
-                               basis=basis, words=words, n_entities=n_ent)
+                               basis=basis, words=words, n_entities=n_ent, chains=chains)
     else:
         init = {k: resume_from[0][f"param.{k}"] for k in pol.PARAM_SHAPES}  # Adam's order
         vocabulary = list(resume_from[1]["vocabulary"])
