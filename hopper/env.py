@@ -453,7 +453,7 @@ def _cos_rows(a: np.ndarray, q: np.ndarray) -> np.ndarray:
 _WALKER_CHUNK = 96  # walkers whose [candidates, D] blocks are made at once (see candidate_arrays)
 
 
-def _padded(rows: list, fill: int = -1) -> np.ndarray:
+def pad_rows(rows: list, fill: int = -1) -> np.ndarray:
     """Tuples of ints as one [len(rows), longest] int64 array, ``fill`` as padding."""
     width = max([len(r) for r in rows] + [1])
     out = np.full((len(rows), width), fill, np.int64)
@@ -537,7 +537,7 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
     facts = np.concatenate(parts_f) if B else np.zeros(0, np.int64)
     dirs = np.concatenate(parts_d).astype(np.int8) if B else np.zeros(0, np.int8)
     is_dense = np.concatenate(parts_x) if B else np.zeros(0, np.float32)
-    fetched = _padded([w.fetched for w in walkers])         # [B, F], -1 padding
+    fetched = pad_rows([w.fetched for w in walkers])         # [B, F], -1 padding
     if flat_filter.any():
         drop = flat_filter[seg] & (facts[:, None] == fetched[seg]).any(1)
         if drop.any():
@@ -584,8 +584,8 @@ def candidate_arrays(graph: Graph, walkers: list, qvecs: np.ndarray, hop: int, m
         sim_rel[a:b] = _rowdot(np.asarray(graph.relation_vecs[graph.rel[facts[a:b]]]), qv)
         gain[a:b] = _cos_rows(path[s] + fv, qv) - cover[w0:w1][s]
     if N:
-        visited = _padded([tuple(w.visited) + (w.entity,) for w in walkers])
-        linked_p = _padded([tuple(s) for s in linked])
+        visited = pad_rows([tuple(w.visited) + (w.entity,) for w in walkers])
+        linked_p = pad_rows([tuple(s) for s in linked])
         deg = (graph.adj_ptr[nexts + 1] - graph.adj_ptr[nexts]).astype(np.float32)
         kind = graph.rel[facts].astype(np.int64) * 2 + dirs
         _, kinv, kcnt = np.unique(seg * (int(kind.max()) + 1) + kind, return_inverse=True,

@@ -62,7 +62,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .env import N_CHEAP, N_STOP
+from .env import N_CHEAP, N_STOP, pad_rows
 
 NEG = -1e9  # the score of a padded (absent) candidate
 
@@ -275,32 +275,35 @@ def chain_table(chains: list, max_hops: int) -> np.ndarray:
     return table
 
 
-def chain_marks(P: dict, slots: np.ndarray, paths: list, mask: np.ndarray):
-    """(k_a [B, C], k_0 [B]): 1 where fetching candidate a keeps the walk on a chain some
+def chain_marks(P: dict, slots: np.ndarray, paths: np.ndarray, mask: np.ndarray):
+    """(l_a [B, C], l_0 [B]): 1 where fetching candidate a keeps the walk on a chain some
     training question is answered by (its kinds so far, then a's, begin one), and where the
     kinds fetched so far are such a chain, whole.
 
-    ``slots`` [B, C] are the candidates' kinds and ``paths`` each walker's kinds so far, both
-    as rows of ``E``.  Sequences are compared as integers (kind + 1 in base 2R + 2 per hop).
+    ``slots`` [B, C] are the candidates' kinds and ``paths`` [B, L] each walker's kinds so far
+    (-1 padding), both as rows of ``E``.  Sequences are compared as integers (kind + 1 in
+    base 2R + 2 per hop).
     """
     table = np.asarray(P["chains"].detach() if hasattr(P["chains"], "detach") else P["chains"])
     B, C = slots.shape
-    if table.shape[0] == 0:
+    width = table.shape[1]
+    paths = np.asarray(paths, np.int64).reshape(B, -1)
+    depth = (paths >= 0).sum(1)
+    if table.shape[0] == 0 or width == 0:
         return np.zeros((B, C), np.float32), np.zeros(B, np.float32)
     base = np.int64(P["E"].shape[0] + 1)
-    pos = base ** np.arange(table.shape[1], dtype=np.int64)
+    pos = base ** np.arange(width, dtype=np.int64)
     digits = table.astype(np.int64) + 1                   # 0 past a chain's end
     whole = (digits * pos).sum(1)
     prefixes = np.unique(np.concatenate([(digits[:, :n] * pos[:n]).sum(1)
-                                         for n in range(1, table.shape[1] + 1)]))
-    code = np.array([sum((k + 1) * int(pos[i]) for i, k in enumerate(p)) for p in paths],
-                    np.int64)
-    depth = np.array([len(p) for p in paths], np.int64)
-    k_0 = np.isin(code, whole).astype(np.float32) * (depth > 0)
-    fits = depth < table.shape[1]
-    nxt = code[:, None] + (slots.astype(np.int64) + 1) * pos[np.minimum(depth, len(pos) - 1)][:, None]
-    k_a = (np.isin(nxt, prefixes) & mask & fits[:, None]).astype(np.float32)
-    return k_a, k_0
+                                         for n in range(1, width + 1)]))
+    L = min(paths.shape[1], width)
+    code = ((paths[:, :L] + 1) * pos[:L]).sum(1)
+    l_0 = (np.isin(code, whole) & (depth > 0) & (depth <= width)).astype(np.float32)
+    fits = depth < width
+    nxt = code[:, None] + (slots.astype(np.int64) + 1) * pos[np.minimum(depth, width - 1)][:, None]
+    l_a = (np.isin(nxt, prefixes) & mask & fits[:, None]).astype(np.float32)
+    return l_a, l_0
 
 
 def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> np.ndarray:
@@ -570,12 +573,10 @@ def step(P: dict, ops, graph, relmap: np.ndarray, x, h, hop, batch: dict, qrel=N
     if P["chains"].shape[0] and "paths" in batch:
         slots = np.full(B * C, -1, np.int64)
         slots[at] = slot
-        n_pol = (P["E"].shape[0] - 1) // 2
-        paths = []
-        for p in batch["paths"]:
-            kinds = np.asarray(p, np.int64)
-            prel = relmap[kinds // 2] if len(relmap) else np.full(len(kinds), -1)
-            paths.append(tuple(relation_slot(prel, kinds % 2, n_pol).tolist()))
+        kinds = pad_rows(batch["paths"])                 # the graph's kinds, -1 padding
+        prel = relmap[np.maximum(kinds, 0) // 2] if len(relmap) else np.full(kinds.shape, -1)
+        paths = np.where(kinds >= 0, relation_slot(prel, kinds % 2, (P["E"].shape[0] - 1) // 2),
+                         -1)
         chain = chain_marks(P, slots.reshape(B, C), paths, np.asarray(batch["mask"]))
     logp = scores(P, ops, x, h, here, qrel, ops.asarray(hop), cand, ops.asarray(batch["feats"]),
                   ops.asarray(batch["mask"]), ops.asarray(batch["stop_feats"]), here_row,

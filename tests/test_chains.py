@@ -9,7 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from hopper import policy as pol
-from hopper.env import Episode, Walker, answer_chains, candidates, pad_candidates, question_chains
+from hopper.env import (Episode, Walker, answer_chains, candidates, pad_candidates, pad_rows,
+                        question_chains)
 
 R1, R2, R3 = 0, 1, 2  # relation rows of the tiny graph, in order of first use
 
@@ -60,7 +61,7 @@ def test_chain_marks(tiny_graph):
     batch = pad_candidates(cands)
     assert batch["paths"] == [(), (kind(R1),)]
     slots = np.where(batch["mask"], g.rel[np.maximum(batch["facts"], 0)] * 2 + batch["dirs"], -1)
-    on, whole = pol.chain_marks(params, slots, batch["paths"], batch["mask"])
+    on, whole = pol.chain_marks(params, slots, pad_rows(batch["paths"]), batch["mask"])
     # at a: fetching r1 forward begins the chain; r3 does not
     for j in np.flatnonzero(batch["mask"][0]):
         assert on[0, j] == (slots[0, j] == kind(R1))
@@ -68,7 +69,7 @@ def test_chain_marks(tiny_graph):
     for j in np.flatnonzero(batch["mask"][1]):
         assert on[1, j] == (slots[1, j] == kind(R2))
     assert whole.tolist() == [0.0, 0.0]  # neither walker has fetched a whole chain yet
-    done = pol.chain_marks(params, slots, [(), (kind(R1), kind(R2))], batch["mask"])[1]
+    done = pol.chain_marks(params, slots, pad_rows([(), (kind(R1), kind(R2))]), batch["mask"])[1]
     assert done.tolist() == [0.0, 1.0]
     assert not on[~batch["mask"]].any()  # padding is never marked
 
