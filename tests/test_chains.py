@@ -68,9 +68,13 @@ def test_chain_marks(tiny_graph):
     # at b after r1: r2 forward completes it; r1 backwards (to a) and r3 leave it
     for j in np.flatnonzero(batch["mask"][1]):
         assert on[1, j] == (slots[1, j] == kind(R2))
-    assert whole.tolist() == [0.0, 0.0]  # neither walker has fetched a whole chain yet
+    # neither walker has fetched a whole chain yet; the second is midway through one
+    assert whole.tolist() == [[0.0, 0.0], [0.0, 1.0]]
     done = pol.chain_marks(params, slots, pad_rows([(), (kind(R1), kind(R2))]), batch["mask"])[1]
-    assert done.tolist() == [0.0, 1.0]
+    assert done.tolist() == [[0.0, 0.0], [1.0, 0.0]]
+    off = pol.chain_marks(params, slots, pad_rows([(kind(R3),), (kind(R1), kind(R3))]),
+                          batch["mask"])[1]
+    assert not off.any()  # off every chain: neither whole nor midway
     assert not on[~batch["mask"]].any()  # padding is never marked
 
 
