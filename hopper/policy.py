@@ -31,11 +31,10 @@ probabilities.
                                                                            questions are answered
                                                                            by, see chain_marks)
     STOP       s_0 = z_t . w_stop + x . u_stop[t] + g_t . w_g + b_stop + k_0 w_known[t, 1]
-                     + l_0 . w_chain[t, 1:3]                              (g_t: cheap features;
-                                                                           k_0: stands on one;
+                     + l_0 w_chain[t, 1]                                  (g_t: cheap features;
+                     (-inf midway along a chain)                          k_0: stands on one;
                                                                            l_0: the kinds fetched
-                                                                           are such a chain, or
-                                                                           only begin one)
+                                                                           are such a chain)
     policy     pi(a | state) = softmax(s)
     memory     h_{t+1} = tanh(h_t U_h + c_a U_c)                           (recurrent summary)
     ensemble   pi(a | state) = 1/M sum_m pi_m(a | state_m)                 (M members trained
@@ -76,7 +75,7 @@ PARAM_SHAPES = {  # name -> shape, with D the text-embedding width, H the hidden
     "U_h": ("H", "H"), "U_c": ("H", "H"),
     "N_c": ("N1", "H"), "N_z": ("N1", "H"), "N_s": ("N1", "H"),
     "w_known": ("T", 2),
-    "chains": ("S", "T1"), "w_chain": ("T", 3),
+    "chains": ("S", "T1"), "w_chain": ("T", 2),
 }
 
 
@@ -262,8 +261,8 @@ def init_params(dim: int, hidden: int, n_relations: int, max_hops: int, seed: in
     params["w_f"][9] = 10.0  # prefer facts that make the path cover more of the question
     params["b_stop"][0] = 1.5  # STOP keeps a fair share (~1/3) at every hop ...
     params["w_g"][0] = -4.0    # ... but the first: the entity the question names is not its answer
-    params["w_chain"][:] = (1.0, 1.0, -1.0)  # follow the chains training questions are
-    #                             answered by, stop where one is complete, not midway
+    params["w_chain"][:] = 1.0  # follow the chains training questions are answered by, and
+    #                             stop where one is complete (never midway: see scores)
     return params
 
 
@@ -279,7 +278,9 @@ def chain_table(chains: list, max_hops: int) -> np.ndarray:
 def chain_marks(P: dict, slots: np.ndarray, paths: np.ndarray, mask: np.ndarray):
     """(l_a [B, C], l_0 [B, 2]): 1 where fetching candidate a keeps the walk on a chain some
     training question is answered by (its kinds so far, then a's, begin one); where the kinds
-    fetched so far are such a chain, whole (l_0[:, 0]), or only its beginning (l_0[:, 1]).
+    fetched so far are such a chain, whole (l_0[:, 0]); and where they are only the beginning
+    of one and some candidate goes on along it (l_0[:, 1]: the walk is midway, and STOP is
+    not offered).
 
     ``slots`` [B, C] are the candidates' kinds and ``paths`` [B, L] each walker's kinds so far
     (-1 padding), both as rows of ``E``.  Sequences are compared as integers (kind + 1 in
@@ -302,11 +303,11 @@ def chain_marks(P: dict, slots: np.ndarray, paths: np.ndarray, mask: np.ndarray)
     code = ((paths[:, :L] + 1) * pos[:L]).sum(1)
     walked = (depth > 0) & (depth <= width)
     complete = np.isin(code, whole) & walked
-    l_0 = np.stack([complete, np.isin(code, prefixes) & walked & ~complete], 1).astype(np.float32)
     fits = depth < width
     nxt = code[:, None] + (slots.astype(np.int64) + 1) * pos[np.minimum(depth, width - 1)][:, None]
-    l_a = (np.isin(nxt, prefixes) & mask & fits[:, None]).astype(np.float32)
-    return l_a, l_0
+    on = np.isin(nxt, prefixes) & mask & fits[:, None]
+    midway = np.isin(code, prefixes) & walked & ~complete & on.any(1)
+    return on.astype(np.float32), np.stack([complete, midway], 1).astype(np.float32)
 
 
 def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> np.ndarray:
@@ -387,7 +388,8 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
     if chain is not None:  # weights per hop
         wc = P["w_chain"][ops.asarray(hop)]
         s = s + ops.asarray(chain[0]) * wc[:, 0:1]
-        s_stop = s_stop + (ops.asarray(chain[1]) * wc[:, 1:3]).sum(-1, keepdims=True)
+        s_stop = s_stop + ops.asarray(chain[1][:, :1]) * wc[:, 1:2]
+        s_stop = ops.where(ops.asarray(chain[1][:, 1:] > 0), NEG, s_stop)
     s = ops.where(ops.asarray(mask), s, NEG)
     return ops.log_softmax(ops.cat([s_stop, s], axis=1))
 
@@ -510,7 +512,7 @@ def _fill_older(params: dict) -> None:
             params["w_known"] = np.zeros((T, 2), np.float32)
         if "chains" not in params:  # made before policies knew the questions' chains
             params |= {"chains": np.zeros((0, T - 1), np.float32),
-                       "w_chain": np.zeros((T, 3), np.float32)}
+                       "w_chain": np.zeros((T, 2), np.float32)}
 
 
 def mixture_step(members: list, ops, graph, relmap: np.ndarray, xs: list, hs: list, hop,

@@ -68,8 +68,11 @@ def test_chain_marks(tiny_graph):
     # at b after r1: r2 forward completes it; r1 backwards (to a) and r3 leave it
     for j in np.flatnonzero(batch["mask"][1]):
         assert on[1, j] == (slots[1, j] == kind(R2))
-    # neither walker has fetched a whole chain yet; the second is midway through one
+    # neither walker has fetched a whole chain yet; the second is midway through one, with a
+    # candidate (r2) that goes on along it
     assert whole.tolist() == [[0.0, 0.0], [0.0, 1.0]]
+    nowhere = pol.chain_marks(params, slots, pad_rows(batch["paths"]), np.zeros_like(batch["mask"]))
+    assert not nowhere[1].any()  # midway with no way on: STOP stays offered
     done = pol.chain_marks(params, slots, pad_rows([(), (kind(R1), kind(R2))]), batch["mask"])[1]
     assert done.tolist() == [[0.0, 0.0], [1.0, 0.0]]
     off = pol.chain_marks(params, slots, pad_rows([(kind(R3),), (kind(R1), kind(R3))]),
@@ -100,6 +103,8 @@ def test_chain_marks_are_read_the_same_on_numpy_and_torch(tiny_graph):
     ops = pol.TorchOps()
     lp_t, _ = pol.step(tp, ops, g, relmap, ops.asarray(X), ops.asarray(h), hop, batch)
     assert np.allclose(np.exp(lp_np), np.exp(lp_t.numpy()), atol=1e-6)
+    # midway along r1 > r2 with r2 on offer, the second walker cannot stop; the first can
+    assert np.exp(lp_np[1, 0]) < 1e-12 and np.exp(lp_np[0, 0]) > 1e-6
     # the marks are read: without chains the probabilities differ
     bare = dict(params, chains=np.zeros((0, 3), np.float32))
     lp_bare, _ = pol.step(bare, pol.NumpyOps, g, relmap, X, h, hop, batch)
