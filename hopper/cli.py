@@ -68,6 +68,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="train this many policies from different seeds, to answer together "
                         "side by side on the cores there are (steadier on new wordings, M "
                         "times the training work; default 3)")
+    s.add_argument("--no-chains", action="store_true",
+                   help="do not hold walks to the relation chains the training questions are "
+                        "answered by (by default a walk never stops midway along one)")
     s.add_argument("--time-budget", type=_positive("--time-budget", 0), default=None,
                    metavar="SECONDS", help="stop training after this many seconds")
     s.add_argument("--resume", action="store_true",
@@ -172,6 +175,8 @@ def _cmd_train(args, hp):
         extra["time_budget"] = float(args.time_budget)
     if args.members is not None:
         extra["members"] = args.members
+    if args.no_chains:
+        extra["chains"] = False
     log = None if args.json else (lambda m: print(m, file=sys.stderr))
     summary = hp.train(args.questions, valid=args.valid, seed=args.seed, max_hops=args.max_hops,
                        log=log, resume=args.resume, **extra)
@@ -184,6 +189,10 @@ def _cmd_train(args, hp):
     if summary.get("members"):
         print(f"{len(summary['members'])} members answer together; their validation Hits@1 alone: "
               + ", ".join(f"{m['valid_hits1']:.3f}" for m in summary["members"]))
+    if summary.get("chains"):
+        shown = summary["chains"][:6]
+        print(f"walks along {len(summary['chains'])} relation chains found in the training "
+              f"questions: " + "; ".join(shown) + ("; ..." if len(summary["chains"]) > 6 else ""))
     print(f"baselines tuned on validation: greedy {summary['baselines']['greedy_hops']} hop(s), "
           f"walk {summary['baselines']['walk_hops']} hop(s)")
     if summary.get("curve_png"):

@@ -432,6 +432,14 @@ class Policy:
         index = {n: i for i, n in enumerate(names)}
         return np.array([index.get(n, len(names)) for n in graph_entities], np.int64)
 
+    def chain_names(self) -> list[str]:
+        """The relation chains the policy walks along, readable: "made by > based in" (a
+        relation walked from object to subject is marked "(reversed)")."""
+        table = self.params.get("chains", np.zeros((0, 0)))
+        return [" > ".join(self.relations[int(k) // 2] + (" (reversed)" if int(k) % 2 else "")
+                           for k in row if k >= 0 and int(k) // 2 < len(self.relations))
+                for row in table]
+
     def relation_map(self, graph_relations: list[str]) -> np.ndarray:
         """Graph relation index -> the policy's relation index (-1: unknown to the policy)."""
         return np.array([self._rel_index.get(r, -1) for r in graph_relations], np.int64)

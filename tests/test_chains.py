@@ -138,3 +138,16 @@ def test_a_policy_stored_before_chains_reads_as_one_without_them(tmp_path):
     for member in back.members:  # every member gets them, as arrays that change nothing
         assert member["chains"].shape == (0, 2) and not member["w_chain"].any()
         assert member["w_chain"].shape == params["w_chain"].shape
+
+
+def test_training_finds_the_tiny_stores_chains_and_can_do_without(tmp_path):
+    from helpers import TINY, make_tiny_store
+
+    hp, questions = make_tiny_store(tmp_path)
+    # who makes part X: made by; where its maker is based: made by, then based in ("stored
+    # in" leads to another city for every part, so it answers none)
+    summary = hp.train(questions, seed=0, epochs=1, **TINY)
+    assert summary["chains"] == ["made by", "made by > based in"]
+    assert hp._policy().chain_names() == summary["chains"]
+    free = hp.train(questions, seed=0, epochs=1, chains=False, **TINY)
+    assert free["chains"] == [] and hp._policy().params["chains"].shape[0] == 0
