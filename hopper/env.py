@@ -391,10 +391,10 @@ class Candidates:
 
 def path_kinds(graph: Graph, walker: Walker) -> tuple:
     """The kinds (relation * 2 + direction) of the facts a walker fetched, in order: each
-    fact was fetched from the entity the walker stood on before it (direction 0 when that
-    was the subject)."""
-    return tuple(int(graph.rel[f]) * 2 + int(graph.subj[f] != e)
-                 for f, e in zip(walker.fetched, walker.visited))
+    fetch's direction is read from where it led (0 when to the fact's object), which also
+    holds for a fact found by similarity that did not touch where the walker stood."""
+    return tuple(int(graph.rel[f]) * 2 + int(graph.obj[f] != e)
+                 for f, e in zip(walker.fetched, walker.visited[1:]))
 
 
 def _preranked_many(graph: Graph, ents: list, qvecs: np.ndarray, cap: int) -> list:

@@ -71,10 +71,11 @@ class TrainSettings:
     #                             training questions' than any one of them, at M times the
     #                             training work (``fit_members``)
     workers: int = 0            # processes training members side by side (0: one per core)
-    chains: bool = True         # the policy sees which kind sequences (made by > based in ...)
-    #                             answer the training questions (env.question_chains): whether
-    #                             a fetch keeps the walk on one and whether the walk has
-    #                             completed one (policy.chain_marks)
+    chains: bool = True         # hold walks to the relation chains (made by > based in ...)
+    #                             the training questions are answered by
+    #                             (env.question_chains): a fetch that stays on one and a walk
+    #                             that completed one are marked, and a walk midway along one
+    #                             is not offered STOP (policy.chain_marks)
 
     def validate(self) -> None:
         checks = {
@@ -439,15 +440,21 @@ def fit(graph: Graph, train_eps: list, valid_eps: list, settings: TrainSettings,
 
     import torch
 
+    settings.validate()
+    chains = None
+    if settings.chains:  # found once, for every member
+        from .env import question_chains
+
+        chains = question_chains(graph, train_eps, settings.max_hops)
     threads = torch.get_num_threads()
     torch.set_num_threads(1)  # tiny tensors: more threads only wait for each other
     try:
         with threadpool_limits(limits=1, user_api="blas"):
             if settings.members > 1:
                 return fit_members(graph, train_eps, valid_eps, settings, progress, log,
-                                   save_checkpoint, resume_from)
+                                   save_checkpoint, resume_from, chains)
             return _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint,
-                        resume_from)
+                        resume_from, chains)
     finally:
         torch.set_num_threads(threads)
 
@@ -498,12 +505,12 @@ def _train_member(i: int):
     job = _MEMBER_JOB
     with threadpool_limits(limits=1, user_api="blas"):
         policy, summary = _fit(job["graph"], job["train"], job["valid"], job["settings"][i],
-                               False, None)
+                               False, None, chains=job["chains"])
     return policy.params, policy.settings, summary
 
 
 def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: int, finish,
-                  log) -> None:
+                  log, chains=None) -> None:
     """Train members in ``workers`` forked processes; ``finish`` each as it ends (in the
     parent, which also writes the checkpoint of the finished members)."""
     import gc
@@ -511,7 +518,8 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
     import os
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings)
+    _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings,
+                       chains=chains)
     if log:
         log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
             f"side by side in {workers} processes")
@@ -535,7 +543,7 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
 
 
 def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
-                save_checkpoint=None, resume_from=None):
+                save_checkpoint=None, resume_from=None, chains=None):
     """Train ``settings.members`` policies (seeds ``member_seed``) and join them into one
     policy answering with their mean probabilities.
 
@@ -584,7 +592,7 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
 
     if workers > 1:
         _side_by_side(graph, train_eps, valid_eps, {i: member_settings(i) for i in todo},
-                      workers, finish, log)
+                      workers, finish, log, chains)
     for i in (todo if workers <= 1 else []):
         def save(arrays, meta, i=i):
             extra_arrays, extra_meta = kept(i)
@@ -594,7 +602,7 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
             log(f"member {i + 1} of {M} (seed {member_settings(i).seed})")
         policy, summary = _fit(graph, train_eps, valid_eps, member_settings(i), progress, log,
                                save if save_checkpoint is not None else None,
-                               member_resume if i == running else None)
+                               member_resume if i == running else None, chains)
         finish(i, policy.params, policy.settings, summary, save=False)  # the next saves it
     done = [done[i] for i in range(M)]
     first_settings = dict(done[0][1]) | {"members": M, "seed": settings.seed,
@@ -624,7 +632,7 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
 
 
 def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=None,
-         resume_from=None):
+         resume_from=None, chains=None):
     import torch
 
     settings.validate()
@@ -654,8 +662,7 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
         if settings.question_view != "sentence":
             *words, vocabulary = pol.word_basis([e.words for e in questions],
                                                 [e.word_vecs for e in questions])
-        chains = None
-        if settings.chains:
+        if settings.chains and chains is None:
             from .env import question_chains
 
             chains = question_chains(graph, questions, settings.max_hops)

@@ -45,6 +45,21 @@ def test_question_chains_keep_the_common_ones(tiny_graph):
     assert question_chains(g, eps, 4, min_share=0.0) == [[kind(R1), kind(R2)], [kind(R1)]]
 
 
+def test_path_kinds_read_each_fetchs_direction_from_where_it_led(tiny_graph):
+    from hopper.env import path_kinds
+
+    g = tiny_graph
+    a, b, c, e = (g.entity_index(x) for x in "abce")
+    f_ab = int(np.flatnonzero((g.subj == a) & (g.rel == R1))[0])
+    f_bc = int(np.flatnonzero((g.subj == b) & (g.rel == R2))[0])
+    f_be = int(np.flatnonzero((g.subj == b) & (g.rel == R3))[0])
+    assert path_kinds(g, Walker(c, (f_ab, f_bc), (a, b, c))) == (kind(R1), kind(R2))
+    assert path_kinds(g, Walker(b, (f_be,), (e, b))) == (kind(R3, True),)
+    # a fact found by similarity need not touch where the walker stood: standing on a, the
+    # walker fetched b -r2-> c forwards, to c
+    assert path_kinds(g, Walker(c, (f_bc,), (a, c))) == (kind(R2),)
+
+
 def _walkers_at_a_and_after_r1(g):
     a, b = g.entity_index("a"), g.entity_index("b")
     f = int(np.flatnonzero((g.subj == a) & (g.rel == R1))[0])
