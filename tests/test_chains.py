@@ -166,3 +166,16 @@ def test_training_finds_the_tiny_stores_chains_and_can_do_without(tmp_path):
     assert hp._policy().chain_names() == summary["chains"]
     free = hp.train(questions, seed=0, epochs=1, chains=False, **TINY)
     assert free["chains"] == [] and hp._policy().params["chains"].shape[0] == 0
+    # the command line: chains by default, named in the output; --no-chains goes without
+    import json
+
+    from helpers import run_cli
+
+    common = ("--questions", questions, "--epochs", "1", "--members", "1", "--store", hp.path)
+    rc, out, err = run_cli("train", *common)
+    assert rc == 0, err
+    assert "walks along 2 relation chains found in the training questions: made by; " \
+           "made by > based in" in out
+    rc, out, err = run_cli("train", *common, "--no-chains", "--json")
+    assert rc == 0, err
+    assert json.loads(out)["chains"] == []
