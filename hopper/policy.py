@@ -366,8 +366,8 @@ def scores(P: dict, ops, x, h, here, qrel, hop, cand, feats, mask, stop_feats, h
     (False = padding), stop_feats [B, G], here_row / start_row [B] (rows of ``N_z`` / ``N_s``:
     where each walker stands / started; None: the shared row), known: (k_a [B, C], k_0 [B]),
     1 where a candidate leads to / the walker stands on an answer a visible fact already states
-    (completion questions; None: none), chain: (k_a [B, C], k_0 [B]) from ``chain_marks``
-    (None: none)  ->  log pi [B, 1 + C].
+    (completion questions; None: none), chain: (l_a [B, C], l_0 [B, 2]) from ``chain_marks``
+    (None: none; l_0[:, 1] = 1 takes STOP away)  ->  log pi [B, 1 + C].
     """
     n_z = P["N_z"][ops.asarray(here_row)] if here_row is not None else P["N_z"][-1]
     n_z = n_z + (P["N_s"][ops.asarray(start_row)] if start_row is not None else P["N_s"][-1])
