@@ -496,30 +496,50 @@ def _die_with_parent(parent: int) -> None:
 
 
 def _train_member(i: int):
-    """In a forked process: train member i quietly; return its arrays, settings and summary."""
+    """In a forked process: train member i quietly, counting its batches in the shared
+    ``batches`` array (the parent's progress bar reads it); return its arrays, settings and
+    summary."""
     from threadpoolctl import threadpool_limits
 
     import torch
 
     torch.set_num_threads(1)
     job = _MEMBER_JOB
+    batches = job["batches"]
+
+    def tick(planned: int):
+        batches[2 * i] += 1           # this process alone writes slots 2i and 2i + 1
+        batches[2 * i + 1] = planned
+
     with threadpool_limits(limits=1, user_api="blas"):
         policy, summary = _fit(job["graph"], job["train"], job["valid"], job["settings"][i],
-                               False, None, chains=job["chains"])
+                               False, None, chains=job["chains"], tick=tick)
     return policy.params, policy.settings, summary
 
 
 def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: int, finish,
-                  log, chains=None) -> None:
+                  log, chains=None, progress: bool = False) -> None:
     """Train members in ``workers`` forked processes; ``finish`` each as it ends (in the
-    parent, which also writes the checkpoint of the finished members)."""
+    parent, which also writes the checkpoint of the finished members).  With ``progress``
+    the parent shows one bar for all of them: each member counts its batches in an array
+    the processes share, and the parent reads it twice a second."""
     import gc
     import multiprocessing as mp
     import os
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
+    ctx = mp.get_context("fork")
+    # per member: batches done, batches planned (epochs x batches per epoch); made before
+    # the fork, so the processes share it
+    batches = ctx.Array("q", 2 * (max(member_settings) + 1), lock=False)
     _MEMBER_JOB.update(graph=graph, train=train_eps, valid=valid_eps, settings=member_settings,
-                       chains=chains)
+                       chains=chains, batches=batches)
+    bar = None
+    if progress:
+        from tqdm import tqdm
+
+        bar = tqdm(total=None, desc=f"training {len(member_settings)} members", unit="batch",
+                   file=sys.stderr)
     if log:
         log(f"training members {', '.join(str(i + 1) for i in member_settings)} "
             f"side by side in {workers} processes")
@@ -532,12 +552,23 @@ def _side_by_side(graph, train_eps, valid_eps, member_settings: dict, workers: i
     try:
         # the request to die with the parent is made as each process starts, before it waits
         # for a member to train: one still waiting when its parent is killed would wait forever
-        with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("fork"),
+        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
                                  initializer=_die_with_parent, initargs=(os.getpid(),)) as ex:
             jobs = {ex.submit(_train_member, i): i for i in member_settings}
-            for job in as_completed(jobs):
-                finish(jobs[job], *job.result(), save=True)
+            pending = set(jobs)
+            while pending:
+                ended, pending = wait(pending, timeout=0.5, return_when=FIRST_COMPLETED)
+                for job in ended:
+                    i = jobs[job]
+                    finish(i, *job.result(), save=True)
+                    batches[2 * i + 1] = batches[2 * i]  # early stopping left the rest undone
+                plans = [batches[2 * i + 1] for i in member_settings]
+                if bar is not None and any(plans):  # a member not started yet: as the others
+                    bar.total = sum(p or max(plans) for p in plans)
+                    bar.update(sum(batches[2 * i] for i in member_settings) - bar.n)
     finally:
+        if bar is not None:
+            bar.close()
         gc.unfreeze()
         _MEMBER_JOB.clear()
 
@@ -592,7 +623,8 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
 
     if workers > 1:
         _side_by_side(graph, train_eps, valid_eps, {i: member_settings(i) for i in todo},
-                      workers, finish, log, chains)
+                      workers, finish, log, chains,
+                      progress=sys.stderr.isatty() if progress is None else progress)
     for i in (todo if workers <= 1 else []):
         def save(arrays, meta, i=i):
             extra_arrays, extra_meta = kept(i)
@@ -632,7 +664,7 @@ def fit_members(graph, train_eps, valid_eps, settings, progress=None, log=None,
 
 
 def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=None,
-         resume_from=None, chains=None):
+         resume_from=None, chains=None, tick=None):
     import torch
 
     settings.validate()
@@ -749,6 +781,8 @@ def _fit(graph, train_eps, valid_eps, settings, progress, log, save_checkpoint=N
             if bar is not None:
                 bar.update(1)
                 bar.set_postfix(reward=f"{np.mean(rewards_seen):.3f}")
+            if tick is not None:
+                tick(settings.epochs * n_batches)
         policy = pol.Policy(_numpy_params(P), base_settings)
         vh, vm, _ = validate(graph, policy, valid_eps, settings.beam) if valid_eps else (
             float(np.mean(rewards_seen)), 0.0, [])

@@ -109,12 +109,17 @@ def _members(hp, version):
         return pol.Policy.read(con, version).members
 
 
-def test_members_side_by_side_give_the_policy_trained_one_at_a_time(tmp_path):
+def test_members_side_by_side_give_the_policy_trained_one_at_a_time(tmp_path, capsys):
     """Each member's numbers depend only on its seed, not on the process that trained it."""
     hp, questions = make_tiny_store(tmp_path)
     lines = []
-    apart = hp.train(questions, seed=1, epochs=2, members=3, workers=2, log=lines.append, **TINY)
+    apart = hp.train(questions, seed=1, epochs=2, members=3, workers=2, log=lines.append,
+                     **(TINY | {"progress": True}))
     assert any("side by side in 2 processes" in m for m in lines)
+    # one progress bar for the members in their processes, counting every batch they trained
+    done = sum(m["epochs"] for m in apart["members"]) * -(-apart["train_questions"] // 8)
+    bar = capsys.readouterr().err.replace("\r", "\n").strip().splitlines()[-1]
+    assert bar.startswith("training 3 members") and f" {done}/{done} " in bar
     alone = hp.train(questions, seed=1, epochs=2, members=3, workers=1, **TINY)
     a, b = _members(hp, apart["version"]), _members(hp, alone["version"])
     assert len(a) == 3 and all(same_params(x, y) for x, y in zip(a, b))
