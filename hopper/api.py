@@ -287,7 +287,7 @@ class Hopper:
         valid_eps = [e for e in eps[len(qs):] if e.starts and e.gold]
         policy, summary = tr.fit(graph, train_eps, valid_eps, cfg, progress=progress, log=log,
                                  save_checkpoint=save, resume_from=resume_from)
-        summary["chains"] = policy.chain_names()
+        summary["chains"] = policy.settings["chain_names"] = policy.chain_names()
         summary["baselines"] = self._tune_baselines(graph, valid_eps or train_eps[:200], max_hops)
         policy.settings.update(summary["baselines"])
         from . import embed

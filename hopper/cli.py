@@ -162,7 +162,9 @@ def _cmd_info(args, hp):
         print(f"policy     v{pol['version']} of {pol['versions']}, trained {pol['created_at']}, "
               f"validation Hits@1 {sc.get('valid_hits1', 0):.3f}"
               + (f", {pol['settings']['members']} members" if pol["settings"].get("members", 1) > 1
-                 else ""))
+                 else "")
+              + (f", {len(pol['settings']['chain_names'])} relation chains"
+                 if pol["settings"].get("chain_names") else ""))
     else:
         print("policy     none (run 'hopper train')")
 

@@ -176,6 +176,8 @@ def test_training_finds_the_tiny_stores_chains_and_can_do_without(tmp_path):
     assert rc == 0, err
     assert "walks along 2 relation chains found in the training questions: made by; " \
            "made by > based in" in out
+    rc, out, err = run_cli("info", "--store", hp.path)
+    assert rc == 0 and ", 2 relation chains" in out, out
     rc, out, err = run_cli("train", *common, "--no-chains", "--json")
     assert rc == 0, err
     assert json.loads(out)["chains"] == []
