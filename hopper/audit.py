@@ -74,8 +74,11 @@ def read_run(store: Store, run_id: str) -> dict:
             "rf.from_entity, rf.to_entity, f.source, rf.alternatives "
             "FROM run_fetches rf LEFT JOIN facts f ON f.fact_id = rf.fact_id "
             "WHERE rf.run_id = ? ORDER BY rf.hop", [rid]).fetchall()
-    (run_id_, created, question, subject, relation, strategy, version, answer, confidence,
-     abstained, reason, ranked, starts, facts_version, elapsed) = row
+        (run_id_, created, question, subject, relation, strategy, version, answer, confidence,
+         abstained, reason, ranked, starts, facts_version, elapsed) = row
+        settings = first(con.execute("SELECT settings FROM policies WHERE version = ?",
+                                     [version])) if version is not None else None
+    chains = json.loads(settings[0] or "{}").get("chain_names", []) if settings else []
     fetches = []
     for hop, fid, s, r, o, text, p, frm, to, source, alts in fetch_rows:
         fetches.append({
@@ -83,6 +86,8 @@ def read_run(store: Store, run_id: str) -> dict:
             "text": text, "probability": float(p), "direction": _direction(s, o, frm, to),
             "from": frm, "to": to, "source": source,
             "alternatives": json.loads(alts) if alts else []})
+    if strategy == "policy":
+        _mark_stops(fetches, chains)
     return {
         "run_id": run_id_, "created_at": _iso(created), "question": question,
         "subject": subject, "relation": relation, "strategy": strategy,
@@ -95,6 +100,23 @@ def read_run(store: Store, run_id: str) -> dict:
         "elapsed_ms": float(elapsed) if elapsed is not None else None,
         "fetches": fetches,
     }
+
+
+def _mark_stops(fetches: list, chain_names: list) -> None:
+    """Say, per fetch, whether STOP was offered at that decision (``stop_offered``): a policy
+    does not offer it midway along a chain its training questions are answered by
+    (``policy.chain_marks``), which the fetched path shows when the fetch went on along one
+    (``midway_along``: those chains)."""
+    chains = {tuple(c.split(" > ")) for c in chain_names}
+    path: tuple = ()
+    for f in fetches:
+        step = path + (f["relation"] + (" (reversed)" if f["direction"] == "inverse" else ""),)
+        along = sorted(" > ".join(c) for c in chains if c[:len(step)] == step)
+        midway = bool(path) and path not in chains and bool(along)
+        f["stop_offered"] = not midway
+        if midway:
+            f["midway_along"] = along
+        path = step
 
 
 _DATE = re.compile(r"\d{4}-\d{2}-\d{2}")
@@ -274,6 +296,10 @@ def format_run(run: dict) -> str:
                 lines.append(f"        beat: {_fit(_alt_text(alt), 80)}  (p={_fmt_p(alt.get('probability'))})")
             else:
                 lines.append("        beat: (no other option at this step)")
+            if f.get("stop_offered") is False:
+                lines.append(f"        STOP not offered: midway along {_clean(f['midway_along'][0])}"
+                             + (f" (or {len(f['midway_along']) - 1} more)"
+                                if len(f["midway_along"]) > 1 else ""))
     ranked = run.get("ranked") or []
     if len(ranked) > 1:
         lines.append("")
