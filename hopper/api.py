@@ -531,6 +531,8 @@ class Hopper:
             runs.append((doc, out, ms))
         created = _now()
 
+        from .audit import mark_stops
+
         def fill(con):
             info = describe(con)
             for doc, out, _ in runs:
@@ -544,6 +546,8 @@ class Hopper:
                         "from": graph.entity_names[f.from_entity] if f.from_entity >= 0 else None,
                         "to": graph.entity_names[f.to_entity], "source": r[5],
                         "alternatives": [_alternative(graph, info, a, p) for a, p in f.alternatives]})
+                if strategy == "policy":  # where STOP was not offered, as the audit says it
+                    mark_stops(doc["fetches"], policy.settings.get("chain_names", []))
 
         if not record:
             with self.store.connect() as con:

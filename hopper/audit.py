@@ -87,7 +87,7 @@ def read_run(store: Store, run_id: str) -> dict:
             "from": frm, "to": to, "source": source,
             "alternatives": json.loads(alts) if alts else []})
     if strategy == "policy":
-        _mark_stops(fetches, chains)
+        mark_stops(fetches, chains)
     return {
         "run_id": run_id_, "created_at": _iso(created), "question": question,
         "subject": subject, "relation": relation, "strategy": strategy,
@@ -102,7 +102,7 @@ def read_run(store: Store, run_id: str) -> dict:
     }
 
 
-def _mark_stops(fetches: list, chain_names: list) -> None:
+def mark_stops(fetches: list, chain_names: list) -> None:
     """Say, per fetch, whether STOP was offered at that decision (``stop_offered``): a policy
     does not offer it midway along a chain its training questions are answered by
     (``policy.chain_marks``), which the fetched path shows when the fetch went on along one

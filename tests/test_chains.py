@@ -188,7 +188,7 @@ def test_training_finds_the_tiny_stores_chains_and_can_do_without(tmp_path):
 
 
 def test_audit_says_where_stop_was_not_offered():
-    from hopper.audit import _mark_stops, format_run
+    from hopper.audit import mark_stops, format_run
 
     def fetch(hop, relation, direction="forward"):
         return {"hop": hop, "fact_id": hop, "relation": relation, "direction": direction,
@@ -197,15 +197,15 @@ def test_audit_says_where_stop_was_not_offered():
 
     chains = ["made by", "made by > managed by > reports to", "contains part (reversed) > made by"]
     run = [fetch(1, "made by"), fetch(2, "managed by"), fetch(3, "reports to")]
-    _mark_stops(run, chains)
+    mark_stops(run, chains)
     # after "made by" (a whole chain) the walk could stop; after "made by > managed by" not
     assert [f["stop_offered"] for f in run] == [True, True, False]
     assert run[2]["midway_along"] == ["made by > managed by > reports to"]
     back = [fetch(1, "contains part", "inverse"), fetch(2, "made by")]
-    _mark_stops(back, chains)
+    mark_stops(back, chains)
     assert [f["stop_offered"] for f in back] == [True, False]
     off = [fetch(1, "made by"), fetch(2, "based in"), fetch(3, "located in")]
-    _mark_stops(off, chains)
+    mark_stops(off, chains)
     assert all(f["stop_offered"] for f in off)  # off every chain: nothing was withheld
     text = format_run({"run_id": "r", "question": "q", "answer": "a", "confidence": 0.9,
                        "strategy": "policy", "policy_version": 1, "fetches": run})
