@@ -531,7 +531,7 @@ class Hopper:
             runs.append((doc, out, ms))
         created = _now()
 
-        from .audit import mark_stops
+        from .policy import mark_stops
 
         def fill(con):
             info = describe(con)

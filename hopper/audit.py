@@ -10,6 +10,7 @@ from pathlib import Path
 
 from .errors import InputError
 from .files import write_atomic
+from .policy import mark_stops
 from .store import Store, first
 
 MIN_PREFIX = 6  # characters of a run id that may stand for the whole id
@@ -100,23 +101,6 @@ def read_run(store: Store, run_id: str) -> dict:
         "elapsed_ms": float(elapsed) if elapsed is not None else None,
         "fetches": fetches,
     }
-
-
-def mark_stops(fetches: list, chain_names: list) -> None:
-    """Say, per fetch, whether STOP was offered at that decision (``stop_offered``): a policy
-    does not offer it midway along a chain its training questions are answered by
-    (``policy.chain_marks``), which the fetched path shows when the fetch went on along one
-    (``midway_along``: those chains)."""
-    chains = {tuple(c.split(" > ")) for c in chain_names}
-    path: tuple = ()
-    for f in fetches:
-        step = path + (f["relation"] + (" (reversed)" if f["direction"] == "inverse" else ""),)
-        along = sorted(" > ".join(c) for c in chains if c[:len(step)] == step)
-        midway = bool(path) and path not in chains and bool(along)
-        f["stop_offered"] = not midway
-        if midway:
-            f["midway_along"] = along
-        path = step
 
 
 _DATE = re.compile(r"\d{4}-\d{2}-\d{2}")

@@ -310,6 +310,23 @@ def chain_marks(P: dict, slots: np.ndarray, paths: np.ndarray, mask: np.ndarray)
     return on.astype(np.float32), np.stack([complete, midway], 1).astype(np.float32)
 
 
+def mark_stops(fetches: list, chain_names: list) -> None:
+    """Say, per fetch of an answer (dicts as ``ask`` gives them), whether STOP was offered at
+    that decision (``stop_offered``): it is not midway along a chain the training questions
+    are answered by (``chain_marks``), which the fetched path shows when the fetch went on
+    along one (``midway_along``: those chains, as ``Policy.chain_names`` names them)."""
+    chains = {tuple(c.split(" > ")) for c in chain_names}
+    path: tuple = ()
+    for f in fetches:
+        step = path + (f["relation"] + (" (reversed)" if f["direction"] == "inverse" else ""),)
+        along = sorted(" > ".join(c) for c in chains if c[:len(step)] == step)
+        midway = bool(path) and path not in chains and bool(along)
+        f["stop_offered"] = not midway
+        if midway:
+            f["midway_along"] = along
+        path = step
+
+
 def relation_slot(rel: np.ndarray, direction: np.ndarray, n_relations: int) -> np.ndarray:
     """Row of ``E`` for (relation, direction); relations unknown to the policy share the last row."""
     rel = np.asarray(rel, np.int64)

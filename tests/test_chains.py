@@ -188,7 +188,8 @@ def test_training_finds_the_tiny_stores_chains_and_can_do_without(tmp_path):
 
 
 def test_audit_says_where_stop_was_not_offered():
-    from hopper.audit import mark_stops, format_run
+    from hopper.audit import format_run
+    from hopper.policy import mark_stops
 
     def fetch(hop, relation, direction="forward"):
         return {"hop": hop, "fact_id": hop, "relation": relation, "direction": direction,
