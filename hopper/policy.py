@@ -315,12 +315,13 @@ def mark_stops(fetches: list, chain_names: list) -> None:
     that decision (``stop_offered``): it is not midway along a chain the training questions
     are answered by (``chain_marks``), which the fetched path shows when the fetch went on
     along one (``midway_along``: those chains, as ``Policy.chain_names`` names them)."""
-    chains = {tuple(c.split(" > ")) for c in chain_names}
-    path: tuple = ()
+    whole = set(chain_names)
+    path = ""
     for f in fetches:
-        step = path + (f["relation"] + (" (reversed)" if f["direction"] == "inverse" else ""),)
-        along = sorted(" > ".join(c) for c in chains if c[:len(step)] == step)
-        midway = bool(path) and path not in chains and bool(along)
+        label = f["relation"] + (" (reversed)" if f["direction"] == "inverse" else "")
+        step = f"{path} > {label}" if path else label
+        along = sorted(c for c in whole if c == step or c.startswith(step + " > "))
+        midway = bool(path) and path not in whole and bool(along)
         f["stop_offered"] = not midway
         if midway:
             f["midway_along"] = along
